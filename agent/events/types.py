@@ -1,0 +1,111 @@
+"""Power-quality events as the detector produces and the publishers and store consume them."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+import numpy as np
+import numpy.typing as npt
+
+EventKind = Literal["dip", "swell", "interruption"]
+EndReason = Literal["recovery", "power_loss", "end_of_data"]
+
+
+@dataclass
+class Thresholds:
+    """Event thresholds as fractions of the declared voltage Udin.
+
+    Defaults follow IEC 61000-4-30 Ed.3 clause 5.4 practice: dip 90 %, swell 110 %,
+    hysteresis 2 %; interruption 5 % (EN 50160) or 10 % (IEEE 1159).
+    """
+
+    dip: float = 0.90
+    swell: float = 1.10
+    interruption: float = 0.05
+    hysteresis: float = 0.02
+
+    def as_dict(self) -> dict[str, float]:
+        return {"dip": self.dip, "swell": self.swell, "interruption": self.interruption,
+                "hysteresis": self.hysteresis}
+
+
+@dataclass
+class Event:
+    """One dip, swell or interruption.
+
+    Times are sample indices of the raw signal (``start``, ``end``) plus UTC seconds
+    (``start_utc``, ``end_utc``) from the timebase. ``level_v`` is the residual voltage
+    (lowest Urms(1/2) on any involved channel) for dips and interruptions and the maximum for
+    swells [V]; ``level_pu`` is that over Udin. For an interruption, ``enclosing_*`` describe
+    the below-dip-threshold period that contains it. ``sag_energy_s`` is the voltage-sag
+    energy ∫(1-(U/Udin)²)dt [s] (IEEE 1564-2014) over the event, None for swells.
+    ``end_uncertainty_s`` is set when the end had to be inferred (power loss).
+    """
+
+    event_id: str
+    kind: EventKind
+    channels: tuple[int, ...]
+    start: float
+    start_utc: float
+    nominal_v: float
+    thresholds: Thresholds
+    level_v: float
+    end: float | None = None
+    end_utc: float | None = None
+    per_channel_level_v: tuple[float, ...] = ()
+    enclosing_duration_s: float | None = None
+    enclosing_level_v: float | None = None
+    partial_outage: bool = False
+    sag_energy_s: float | None = None
+    ended_by: EndReason | None = None
+    end_uncertainty_s: float | None = None
+    time_error_s: float | None = None
+    sync_state: str | None = None
+    classification: dict[str, Any] | None = None
+
+    @property
+    def is_open(self) -> bool:
+        return self.end is None
+
+    @property
+    def duration_s(self) -> float | None:
+        if self.end_utc is None:
+            return None
+        return self.end_utc - self.start_utc
+
+    @property
+    def level_pu(self) -> float:
+        return self.level_v / self.nominal_v
+
+
+@dataclass
+class EventUpdate:
+    """The detector's output: an event that just started or just ended."""
+
+    change: Literal["started", "ended"]
+    event: Event
+
+
+@dataclass
+class Capture:
+    """A waveform capture around an event start or end.
+
+    ``counts`` has shape (n, channels), int16 raw ADC counts; volts = counts * ``scale``
+    (per channel, calibration included) [V/count]. ``first_index`` is the sample index of
+    row 0; ``trigger_index`` the sample index of the trigger; ``trigger_utc`` its UTC time.
+    """
+
+    capture_id: str
+    event_id: str
+    trigger: Literal["start", "end"]
+    first_index: int
+    trigger_index: int
+    trigger_utc: float
+    sample_rate: float
+    channel_names: tuple[str, ...]
+    scale: npt.NDArray[np.float64]
+    counts: npt.NDArray[np.int16]
+    pre_cycles: int = 0
+    post_cycles: int = 0
+    meta: dict[str, Any] = field(default_factory=dict)
