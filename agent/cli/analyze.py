@@ -1,0 +1,147 @@
+"""``halfcycle analyze``: offline analysis of a WAV or CSV recording."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+
+from agent.acquisition.base import Block, Source
+from agent.acquisition.replay import CsvSource, ReplayError, WavSource
+from agent.acquisition.timebase import ReplayTimebase
+from agent.cli.main import UserError
+from agent.events.types import Thresholds
+from agent.pipeline import edge_stages, run
+from agent.report.analysis import AnalysisCollector, infer_frequency, infer_nominal, render_table
+from agent.resources import examples_dir
+from agent.site import Site
+
+# The bundled recording of an invented scenario (see agent/examples/README.md).
+EXAMPLE = {
+    "file": "invented-street.wav",
+    "volts_per_count": 400 / 32768,
+    "nominal": 120.0,
+    "frequency": 60.0,
+    "channels": ("L1", "L2"),
+}
+
+_SERVICE_BY_CHANNELS = {1: "1ph", 2: "120/240", 3: "3ph"}
+
+
+def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "analyze",
+        help="analyse a WAV or CSV recording offline",
+        description="Offline analysis of a WAV (16-bit PCM) or CSV (volts per column) recording. "
+        "Without FILE, analyses the bundled recording of an invented scenario.",
+    )
+    p.add_argument("file", nargs="?", help="recording (.wav or .csv); default: bundled invented example")
+    p.add_argument("--nominal", type=float, help="declared voltage Udin [V] (default: inferred)")
+    p.add_argument("--frequency", type=float, choices=(50.0, 60.0), help="nominal frequency [Hz]")
+    p.add_argument("--volts-per-count", type=float, help="WAV scale [V/count], mains side")
+    p.add_argument("--rate", type=float, help="CSV sample rate [S/s]")
+    p.add_argument("--channels", help="comma-separated channel names")
+    p.add_argument("--interruption", type=float, choices=(0.05, 0.10), default=0.05,
+                   help="interruption threshold [pu]: 0.05 (EN 50160) or 0.10 (IEEE 1159)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=cmd_analyze)
+
+
+def _open(args: argparse.Namespace) -> tuple[Source, str]:
+    names = args.channels.split(",") if args.channels else None
+    if args.file is None:
+        path = examples_dir() / str(EXAMPLE["file"])
+        return WavSource(path, float(EXAMPLE["volts_per_count"]),  # type: ignore[arg-type]
+                         channel_names=EXAMPLE["channels"], block_frames=8192), \
+            f"{path.name} (bundled, invented scenario)"
+    path = Path(args.file)
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".wav":
+            if args.volts_per_count is None:
+                raise UserError(f"{path}: a WAV has no scale: give --volts-per-count")
+            return WavSource(path, args.volts_per_count, channel_names=names, block_frames=8192), str(path)
+        if suffix == ".csv":
+            if args.rate is None:
+                raise UserError(f"{path}: a CSV has no sample rate: give --rate")
+            return CsvSource(path, args.rate, volts_per_count=args.volts_per_count,
+                             channel_names=names, block_rows=8192), str(path)
+    except (ReplayError, ValueError) as exc:
+        if isinstance(exc, UserError):
+            raise
+        raise UserError(str(exc)) from None
+    if not path.exists():
+        raise UserError(f"{path}: file not found")
+    raise UserError(f"{path}: unknown recording type {suffix!r} (expected .wav or .csv)")
+
+
+def _probe(source: Source, seconds: float = 2.0) -> np.ndarray:
+    """The first seconds of channel 0 in volts, for inferring nominal values."""
+    want = int(source.info.sample_rate * seconds)
+    parts, got = [], 0
+    for block in source.blocks():
+        parts.append(block.counts[:, 0].astype(np.float64) * source.info.volts_per_count[0])
+        got += block.counts.shape[0]
+        if got >= want:
+            break
+    source.close()
+    if not parts:
+        raise UserError("recording holds no samples")
+    return np.concatenate(parts)[:want]
+
+
+def cmd_analyze(args: argparse.Namespace) -> int:
+    source, label = _open(args)
+    info = source.info
+    nominal, hz = args.nominal, args.frequency
+    if args.file is None:
+        nominal = nominal or float(EXAMPLE["nominal"])  # type: ignore[arg-type]
+        hz = hz or float(EXAMPLE["frequency"])  # type: ignore[arg-type]
+    inferred = nominal is None
+    if nominal is None or hz is None:
+        probe_source, _ = _open(args)
+        volts = _probe(probe_source)
+        if nominal is None:
+            nominal = infer_nominal(float(np.sqrt(np.mean((volts - volts.mean()) ** 2))))
+        if hz is None:
+            hz = infer_frequency(volts, info.sample_rate)
+    site = Site(
+        nominal_v=float(nominal), nominal_hz=float(hz),
+        service_type=_SERVICE_BY_CHANNELS.get(info.channels, "3ph"),
+        channel_names=info.channel_names,
+    )
+    timebase = ReplayTimebase(info.sample_rate)
+    stages, _ = edge_stages(info, site, timebase,
+                                thresholds=Thresholds(interruption=args.interruption))
+    collector = AnalysisCollector(rate=info.sample_rate)
+    stages.append(collector)
+    seen = 0
+
+    def counted() -> Iterator[Block]:
+        nonlocal seen
+        for block in source.blocks():
+            seen = block.end_index
+            yield block
+
+    try:
+        run(counted(), stages)
+    except ReplayError as exc:
+        raise UserError(str(exc)) from None
+    finally:
+        source.close()
+    duration = seen / info.sample_rate
+    result = collector.result(
+        sample_rate=info.sample_rate, nominal_v=float(nominal), nominal_hz=float(hz),
+        channels=info.channels, channel_names=info.channel_names, source=label,
+        nominal_inferred=inferred, duration_s=float(duration),
+    )
+    if args.json:
+        json.dump(result, sys.stdout, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        print(render_table(result))
+    return 0

@@ -1,0 +1,125 @@
+"""Edge pipeline benchmark (on demand, not part of the test suite).
+
+    python tests/bench/bench_edge.py [--minutes 60] [--rate 7680] [--block 7680]
+
+Replays int16 counts (two channels, 7.68 kS/s, a split-phase 120 V / 60 Hz home with a few
+invented dips and swells) through the whole edge chain with every measurement on, on one
+core, and reports:
+
+- the real-time factor (seconds of signal per second of CPU),
+- a per-stage profile,
+- the ratio to a bare numpy pass over the same blocks (read plus per-cycle sum of squares),
+  timed in the same run, so a noisy shared machine shifts both alike,
+- memory (traced Python allocations and RSS) sampled every simulated 5 minutes: flat means
+  no growth with run length.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import time
+import tracemalloc
+from collections import defaultdict
+
+import numpy as np
+
+from agent.acquisition.base import Block, SourceInfo
+from agent.acquisition.timebase import ReplayTimebase
+from agent.pipeline import Frame, edge_stages
+from agent.site import Site
+
+
+def make_minute(rate: float, seed: int = 7) -> np.ndarray:
+    """One minute of invented split-phase 60 Hz signal with dips and a swell, int16 counts."""
+    rng = np.random.default_rng(seed)
+    n = int(rate * 60)
+    t = np.arange(n) / rate
+    env = np.ones(n)
+    env[(t > 10.0) & (t < 10.2)] = 0.55          # a feeder dip (invented)
+    env[(t > 30.0) & (t < 31.5)] = 1.14          # an inverter swell (invented)
+    env[(t > 45.0) & (t < 45.05)] = 0.02         # a brief interruption (invented)
+    phase = 2 * np.pi * 60.0 * t
+    v1 = 120 * np.sqrt(2) * env * (np.sin(phase) + 0.03 * np.sin(3 * phase))
+    v2 = -v1 + rng.normal(0, 0.2, n)
+    volts_per_count = 0.01
+    counts = np.stack([v1, v2], axis=1) / volts_per_count + rng.normal(0, 1.5, (n, 2))
+    return np.clip(np.round(counts), -32768, 32767).astype(np.int16)
+
+
+def blocks_for(minute: np.ndarray, minutes: int, block: int):
+    idx = 0
+    for _ in range(minutes):
+        for s in range(0, minute.shape[0], block):
+            chunk = minute[s : s + block]
+            yield Block(idx, chunk)
+            idx += chunk.shape[0]
+
+
+def bare_pass(minute: np.ndarray, minutes: int, block: int, spc: int) -> float:
+    t0 = time.process_time()
+    acc = 0.0
+    for b in blocks_for(minute, minutes, block):
+        x = b.counts.astype(np.float64)
+        m = (x.shape[0] // spc) * spc
+        acc += float(np.sum((x[:m].reshape(-1, spc, x.shape[1]) ** 2).sum(axis=1)))
+    assert acc > 0
+    return time.process_time() - t0
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--minutes", type=int, default=60)
+    ap.add_argument("--rate", type=float, default=7680.0)
+    ap.add_argument("--block", type=int, default=7680)
+    args = ap.parse_args()
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+    site = Site(nominal_v=120.0, nominal_hz=60.0, service_type="120/240", channel_names=("L1", "L2"))
+    info = SourceInfo(sample_rate=args.rate, channel_names=site.channel_names,
+                      volts_per_count=np.full(2, 0.01))
+    minute = make_minute(args.rate)
+    spc = round(args.rate / site.nominal_hz)
+
+    stages, parts = edge_stages(info, site, ReplayTimebase(args.rate))
+    per_stage: dict[str, float] = defaultdict(float)
+    events = captures = 0
+    mem: list[tuple[float, int, int]] = []
+    tracemalloc.start()
+    t0 = time.process_time()
+    for i, block in enumerate(blocks_for(minute, args.minutes, args.block)):
+        frame = Frame(block)
+        for stage in stages:
+            s0 = time.process_time()
+            frame = stage(frame)
+            per_stage[type(stage).__name__] += time.process_time() - s0
+        events += sum(1 for u in frame.updates if u.change == "ended")
+        captures += len(frame.captures)
+        sim_s = block.end_index / args.rate
+        if i % max(1, int(300 * args.rate / args.block)) == 0:
+            cur, _ = tracemalloc.get_traced_memory()
+            mem.append((sim_s, cur, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss))
+    pipeline_s = time.process_time() - t0
+    tracemalloc.stop()
+    bare_s = bare_pass(minute, args.minutes, args.block, spc)
+
+    signal_s = args.minutes * 60.0
+    print(f"signal: {args.minutes} min, 2 ch, {args.rate:g} S/s, blocks of {args.block}")
+    print(f"events {events}, captures {captures}")
+    print(f"pipeline CPU {pipeline_s:.2f} s -> {signal_s / pipeline_s:,.0f}x real time")
+    print(f"bare numpy pass CPU {bare_s:.3f} s -> {signal_s / bare_s:,.0f}x real time")
+    print(f"pipeline / bare cost ratio: {pipeline_s / bare_s:.1f}")
+    print("per-stage CPU share:")
+    for name, s in sorted(per_stage.items(), key=lambda kv: -kv[1]):
+        print(f"  {name:<14} {s:7.3f} s  {100 * s / pipeline_s:5.1f} %")
+    print("memory (simulated minute, traced KiB, max RSS MiB):")
+    for sim_s, cur, rss in mem:
+        print(f"  {sim_s / 60:6.1f} {cur / 1024:10.1f} {rss / 1024:8.1f}")
+    if len(mem) >= 3:
+        growth = (mem[-1][1] - mem[1][1]) / 1024
+        print(f"traced-memory change from minute {mem[1][0] / 60:.0f} to end: {growth:+.1f} KiB")
+
+
+if __name__ == "__main__":
+    main()
