@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import resource
 import time
 import tracemalloc
 from collections import defaultdict
@@ -48,6 +47,12 @@ def make_minute(rate: float, seed: int = 7) -> np.ndarray:
     return np.clip(np.round(counts), -32768, 32767).astype(np.int16)
 
 
+def rss_bytes() -> int:
+    """Current resident set size [bytes] (Linux /proc), not the peak."""
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+
+
 def blocks_for(minute: np.ndarray, minutes: int, block: int):
     idx = 0
     for _ in range(minutes):
@@ -73,6 +78,8 @@ def main() -> None:
     ap.add_argument("--minutes", type=int, default=60)
     ap.add_argument("--rate", type=float, default=7680.0)
     ap.add_argument("--block", type=int, default=7680)
+    ap.add_argument("--trace-memory", action="store_true",
+                    help="also trace Python allocations (slows the run: do not read its speed)")
     args = ap.parse_args()
     os.environ.setdefault("OMP_NUM_THREADS", "1")
 
@@ -86,7 +93,8 @@ def main() -> None:
     per_stage: dict[str, float] = defaultdict(float)
     events = captures = 0
     mem: list[tuple[float, int, int]] = []
-    tracemalloc.start()
+    if args.trace_memory:
+        tracemalloc.start()
     t0 = time.process_time()
     for i, block in enumerate(blocks_for(minute, args.minutes, args.block)):
         frame = Frame(block)
@@ -98,10 +106,11 @@ def main() -> None:
         captures += len(frame.captures)
         sim_s = block.end_index / args.rate
         if i % max(1, int(300 * args.rate / args.block)) == 0:
-            cur, _ = tracemalloc.get_traced_memory()
-            mem.append((sim_s, cur, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss))
+            cur = tracemalloc.get_traced_memory()[0] if args.trace_memory else 0
+            mem.append((sim_s, cur, rss_bytes()))
     pipeline_s = time.process_time() - t0
-    tracemalloc.stop()
+    if args.trace_memory:
+        tracemalloc.stop()
     bare_s = bare_pass(minute, args.minutes, args.block, spc)
 
     signal_s = args.minutes * 60.0
@@ -113,12 +122,14 @@ def main() -> None:
     print("per-stage CPU share:")
     for name, s in sorted(per_stage.items(), key=lambda kv: -kv[1]):
         print(f"  {name:<14} {s:7.3f} s  {100 * s / pipeline_s:5.1f} %")
-    print("memory (simulated minute, traced KiB, max RSS MiB):")
+    print("memory (simulated minute, traced KiB, current RSS MiB):")
     for sim_s, cur, rss in mem:
-        print(f"  {sim_s / 60:6.1f} {cur / 1024:10.1f} {rss / 1024:8.1f}")
+        print(f"  {sim_s / 60:6.1f} {cur / 1024:10.1f} {rss / 2**20:8.1f}")
     if len(mem) >= 3:
-        growth = (mem[-1][1] - mem[1][1]) / 1024
-        print(f"traced-memory change from minute {mem[1][0] / 60:.0f} to end: {growth:+.1f} KiB")
+        rss_growth = (mem[-1][2] - mem[1][2]) / 2**20
+        traced = (mem[-1][1] - mem[1][1]) / 1024
+        print(f"change from minute {mem[1][0] / 60:.0f} to the end: RSS {rss_growth:+.1f} MiB"
+              + (f", traced {traced:+.1f} KiB" if args.trace_memory else ""))
 
 
 if __name__ == "__main__":
