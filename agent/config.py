@@ -53,7 +53,9 @@ class Section:
     def has(self, name: str) -> bool:
         return name in self.data
 
-    def get(self, name: str, kind: type[T], default: T | None = None, *, required: bool = False) -> T:
+    def get(
+        self, name: str, kind: type[T], default: T | None = None, *, required: bool = False
+    ) -> T:
         if name not in self.data:
             if required or default is None:
                 raise self.error(name, "required key is missing")
@@ -62,8 +64,10 @@ class Section:
         if kind is float and isinstance(value, int) and not isinstance(value, bool):
             value = float(value)
         if not isinstance(value, kind) or (kind is not bool and isinstance(value, bool)):
-            raise self.error(name, f"expected {kind.__name__}, got {type(value).__name__} {value!r}")
-        return value  # type: ignore[return-value]
+            raise self.error(
+                name, f"expected {kind.__name__}, got {type(value).__name__} {value!r}"
+            )
+        return value
 
     def optional(self, name: str, kind: type[T]) -> T | None:
         if name not in self.data:

@@ -185,13 +185,16 @@ def edge_stages(
     return stages, EdgeParts(engine, detector, recorder, journal)
 
 
+def push(stages: Sequence[Stage], frame: Frame) -> Frame:
+    """Pass one frame through every stage in order."""
+    for stage in stages:
+        frame = stage(frame)
+    return frame
+
+
 def run(source: Source | Iterable[Block], stages: Sequence[Stage]) -> None:
     """Push every block through the chain, then one final flush frame."""
     blocks = source.blocks() if hasattr(source, "blocks") else source
     for block in blocks:
-        frame = Frame(block)
-        for stage in stages:
-            frame = stage(frame)
-    frame = Frame(None)
-    for stage in stages:
-        frame = stage(frame)
+        push(stages, Frame(block))
+    push(stages, Frame(None))

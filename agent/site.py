@@ -46,8 +46,18 @@ class Site:
     @classmethod
     def from_section(cls, sec: Section) -> Site:
         sec.reject_unknown(
-            {"site", "device", "nominal_v", "nominal_hz", "service_type", "channels",
-             "measurement_point", "feeder", "transformer", "labels"}
+            {
+                "site",
+                "device",
+                "nominal_v",
+                "nominal_hz",
+                "service_type",
+                "channels",
+                "measurement_point",
+                "feeder",
+                "transformer",
+                "labels",
+            }
         )
         nominal_v = sec.get("nominal_v", float, 230.0)
         if not 50.0 <= nominal_v <= 1000.0:
@@ -62,7 +72,8 @@ class Site:
             raise sec.error("channels", "must be a non-empty list of channel names")
         if len(names) != _CHANNELS[service]:
             raise sec.error(
-                "channels", f"service_type {service} has {_CHANNELS[service]} channels, got {len(names)}"
+                "channels",
+                f"service_type {service} has {_CHANNELS[service]} channels, got {len(names)}",
             )
         labels = sec.get("labels", dict, {})
         return cls(
@@ -82,5 +93,7 @@ class Site:
 def check_identifier(value: str, path: str | None, key: str) -> str:
     """Site and device ids become MQTT topic levels: no wildcards, separators or spaces."""
     if not value or any(c in value for c in "+#/ \t\n\0") or len(value) > 64:
-        raise ConfigError(path, key, f"{value!r} is not a valid identifier (1-64 chars, no + # / or spaces)")
+        raise ConfigError(
+            path, key, f"{value!r} is not a valid identifier (1-64 chars, no + # / or spaces)"
+        )
     return value

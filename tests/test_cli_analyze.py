@@ -38,7 +38,9 @@ def run_fail(capsys: pytest.CaptureFixture[str], *argv: str) -> str:
 def bundled(tmp_path_factory: pytest.TempPathFactory) -> dict:
     out = subprocess.run(
         [sys.executable, "-m", "agent.cli.main", "analyze", "--json"],
-        capture_output=True, text=True, check=True,
+        capture_output=True,
+        text=True,
+        check=True,
     )
     return json.loads(out.stdout)
 
@@ -53,7 +55,13 @@ def test_bundled_recording_header(bundled: dict) -> None:
     assert ts == [0.0, 10.0, 20.0, 30.0, 40.0, 50.0]
     # IEC 61000-4-30 Ed.3 cl. 4.4: 12-cycle basic intervals at 60 Hz are 0.2 s, gapless.
     t = np.array([r["t"] for r in bundled["rms_10_12"]])
-    assert np.allclose(np.diff(t), 0.2, atol=0.002)
+    flagged = np.array([r["flagged"] for r in bundled["rms_10_12"]])
+    dt = np.diff(t)
+    # Off-nominal drift (±0.02 Hz) and the invented 20° phase jump move an interval by < 2 ms;
+    # re-locking onto real zero crossings after the interruption may cost up to one cycle.
+    assert np.all(np.abs(dt - 0.2) <= 1 / 60)
+    steady = ~(flagged[1:] | flagged[:-1])
+    assert np.allclose(dt[steady], 0.2, atol=0.002)
     assert all(len(r["v"]) == 2 for r in bundled["rms_10_12"])
 
 
@@ -105,7 +113,9 @@ def _write_csv(path: Path, rate: float, volts: np.ndarray, header: str | None) -
         np.savetxt(fh, volts, delimiter=",", fmt="%.4f")
 
 
-def test_csv_single_phase_dip_and_inferred_nominal(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_csv_single_phase_dip_and_inferred_nominal(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     rate, f0 = 6400.0, 50.0
     t = np.arange(int(rate * 12)) / rate
     amp = np.where((t >= 4.0) & (t < 4.1), 0.5, 1.0)  # 100 ms at 50 % (5 cycles)

@@ -58,10 +58,26 @@ def _setup(tmp_path: Path) -> Path:
     return cfg
 
 
-def test_calibrate_finds_gain_error_and_fixes_the_reading(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_calibrate_finds_gain_error_and_fixes_the_reading(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     cfg = _setup(tmp_path)
-    assert main(["calibrate", "--config", str(cfg), "--reference-volts", "230.0",
-                 "--uncertainty", "0.05", "--seconds", "4"]) == 0
+    assert (
+        main(
+            [
+                "calibrate",
+                "--config",
+                str(cfg),
+                "--reference-volts",
+                "230.0",
+                "--uncertainty",
+                "0.05",
+                "--seconds",
+                "4",
+            ]
+        )
+        == 0
+    )
     record = CalibrationRecord.load(tmp_path / "calibration.toml")
     # The invented ADC reads 0.6 % high, so the gain is 1 / 1.006 (analytic).
     assert record.channel_gains["L1"] == pytest.approx(1 / 1.006, abs=2e-4)
@@ -71,21 +87,33 @@ def test_calibrate_finds_gain_error_and_fixes_the_reading(tmp_path: Path, capsys
     # (IEC 61000-4-30 Ed.3 Class A magnitude uncertainty, from memory: REFERENCE.md).
     settings = load_edge_settings(cfg)
     source = open_source(settings.source)
-    engine = MeasurementEngine(source.info, settings.site, settings.thresholds,
-                               ReplayTimebase(source.info.sample_rate), settings.gains())
+    engine = MeasurementEngine(
+        source.info,
+        settings.site,
+        settings.thresholds,
+        ReplayTimebase(source.info.sample_rate),
+        settings.gains(),
+    )
     rms = np.concatenate([engine.process(b).intervals.rms for b in source.blocks()])
     assert rms.size > 20
     assert np.all(np.abs(rms - 230.0) <= 0.001 * 230.0)
 
 
-def test_calibrate_refuses_an_implausible_gain(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_calibrate_refuses_an_implausible_gain(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     cfg = _setup(tmp_path)
-    assert main(["calibrate", "--config", str(cfg), "--reference-volts", "100.0", "--seconds", "2"]) == 2
+    assert (
+        main(["calibrate", "--config", str(cfg), "--reference-volts", "100.0", "--seconds", "2"])
+        == 2
+    )
     assert "gain" in capsys.readouterr().err
     assert not (tmp_path / "calibration.toml").exists()
 
 
-def test_config_error_names_file_and_key(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_config_error_names_file_and_key(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     cfg = _setup(tmp_path)
     cfg.write_text(CONFIG.replace('service_type = "1ph"', 'service_type = "2ph"'))
     assert main(["calibrate", "--config", str(cfg), "--reference-volts", "230"]) == 2

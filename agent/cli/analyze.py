@@ -21,32 +21,37 @@ from agent.resources import examples_dir
 from agent.site import Site
 
 # The bundled recording of an invented scenario (see agent/examples/README.md).
-EXAMPLE = {
-    "file": "invented-street.wav",
-    "volts_per_count": 400 / 32768,
-    "nominal": 120.0,
-    "frequency": 60.0,
-    "channels": ("L1", "L2"),
-}
+EXAMPLE_FILE = "invented-street.wav"
+EXAMPLE_VOLTS_PER_COUNT = 400 / 32768
+EXAMPLE_NOMINAL_V = 120.0
+EXAMPLE_NOMINAL_HZ = 60.0
+EXAMPLE_CHANNELS = ("L1", "L2")
 
 _SERVICE_BY_CHANNELS = {1: "1ph", 2: "120/240", 3: "3ph"}
 
 
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p = sub.add_parser(
         "analyze",
         help="analyse a WAV or CSV recording offline",
         description="Offline analysis of a WAV (16-bit PCM) or CSV (volts per column) recording. "
         "Without FILE, analyses the bundled recording of an invented scenario.",
     )
-    p.add_argument("file", nargs="?", help="recording (.wav or .csv); default: bundled invented example")
+    p.add_argument(
+        "file", nargs="?", help="recording (.wav or .csv); default: bundled invented example"
+    )
     p.add_argument("--nominal", type=float, help="declared voltage Udin [V] (default: inferred)")
     p.add_argument("--frequency", type=float, choices=(50.0, 60.0), help="nominal frequency [Hz]")
     p.add_argument("--volts-per-count", type=float, help="WAV scale [V/count], mains side")
     p.add_argument("--rate", type=float, help="CSV sample rate [S/s]")
     p.add_argument("--channels", help="comma-separated channel names")
-    p.add_argument("--interruption", type=float, choices=(0.05, 0.10), default=0.05,
-                   help="interruption threshold [pu]: 0.05 (EN 50160) or 0.10 (IEEE 1159)")
+    p.add_argument(
+        "--interruption",
+        type=float,
+        choices=(0.05, 0.10),
+        default=0.05,
+        help="interruption threshold [pu]: 0.05 (EN 50160) or 0.10 (IEEE 1159)",
+    )
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=cmd_analyze)
 
@@ -54,22 +59,30 @@ def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
 def _open(args: argparse.Namespace) -> tuple[Source, str]:
     names = args.channels.split(",") if args.channels else None
     if args.file is None:
-        path = examples_dir() / str(EXAMPLE["file"])
-        return WavSource(path, float(EXAMPLE["volts_per_count"]),  # type: ignore[arg-type]
-                         channel_names=EXAMPLE["channels"], block_frames=8192), \
-            f"{path.name} (bundled, invented scenario)"
+        path = examples_dir() / EXAMPLE_FILE
+        source = WavSource(
+            path, EXAMPLE_VOLTS_PER_COUNT, channel_names=EXAMPLE_CHANNELS, block_frames=8192
+        )
+        return source, f"{path.name} (bundled, invented scenario)"
     path = Path(args.file)
     suffix = path.suffix.lower()
     try:
         if suffix == ".wav":
             if args.volts_per_count is None:
                 raise UserError(f"{path}: a WAV has no scale: give --volts-per-count")
-            return WavSource(path, args.volts_per_count, channel_names=names, block_frames=8192), str(path)
+            return WavSource(
+                path, args.volts_per_count, channel_names=names, block_frames=8192
+            ), str(path)
         if suffix == ".csv":
             if args.rate is None:
                 raise UserError(f"{path}: a CSV has no sample rate: give --rate")
-            return CsvSource(path, args.rate, volts_per_count=args.volts_per_count,
-                             channel_names=names, block_rows=8192), str(path)
+            return CsvSource(
+                path,
+                args.rate,
+                volts_per_count=args.volts_per_count,
+                channel_names=names,
+                block_rows=8192,
+            ), str(path)
     except (ReplayError, ValueError) as exc:
         if isinstance(exc, UserError):
             raise
@@ -99,8 +112,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     info = source.info
     nominal, hz = args.nominal, args.frequency
     if args.file is None:
-        nominal = nominal or float(EXAMPLE["nominal"])  # type: ignore[arg-type]
-        hz = hz or float(EXAMPLE["frequency"])  # type: ignore[arg-type]
+        nominal = nominal or EXAMPLE_NOMINAL_V
+        hz = hz or EXAMPLE_NOMINAL_HZ
     inferred = nominal is None
     if nominal is None or hz is None:
         probe_source, _ = _open(args)
@@ -110,13 +123,15 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         if hz is None:
             hz = infer_frequency(volts, info.sample_rate)
     site = Site(
-        nominal_v=float(nominal), nominal_hz=float(hz),
+        nominal_v=float(nominal),
+        nominal_hz=float(hz),
         service_type=_SERVICE_BY_CHANNELS.get(info.channels, "3ph"),
         channel_names=info.channel_names,
     )
     timebase = ReplayTimebase(info.sample_rate)
-    stages, _ = edge_stages(info, site, timebase,
-                                thresholds=Thresholds(interruption=args.interruption))
+    stages, _ = edge_stages(
+        info, site, timebase, thresholds=Thresholds(interruption=args.interruption)
+    )
     collector = AnalysisCollector(rate=info.sample_rate)
     stages.append(collector)
     seen = 0
@@ -135,9 +150,14 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         source.close()
     duration = seen / info.sample_rate
     result = collector.result(
-        sample_rate=info.sample_rate, nominal_v=float(nominal), nominal_hz=float(hz),
-        channels=info.channels, channel_names=info.channel_names, source=label,
-        nominal_inferred=inferred, duration_s=float(duration),
+        sample_rate=info.sample_rate,
+        nominal_v=float(nominal),
+        nominal_hz=float(hz),
+        channels=info.channels,
+        channel_names=info.channel_names,
+        source=label,
+        nominal_inferred=inferred,
+        duration_s=float(duration),
     )
     if args.json:
         json.dump(result, sys.stdout, allow_nan=False)

@@ -42,7 +42,9 @@ def _num(x: float | None, nd: int = 4) -> float | None:
 def event_record(ev: Event) -> dict[str, Any]:
     c = ev.classification or {}
     category, duration_class = c.get("ieee1159_category"), c.get("ieee1159_duration_class")
-    ieee1159 = category if duration_class in (None, "", category) else f"{duration_class} {category}"
+    ieee1159 = (
+        category if duration_class in (None, "", category) else f"{duration_class} {category}"
+    )
     return {
         "type": ev.kind,
         "channels": list(ev.channels),
@@ -82,32 +84,51 @@ class AnalysisCollector:
             iv = m.intervals
             for k in range(len(iv)):
                 self.rms_10_12.append(
-                    {"t": round(float(iv.start[k]) / self.rate, 5),
-                     "v": [round(float(v), 4) for v in iv.rms[k]],
-                     "thd": [_num(float(x), 5) for x in iv.thd[k]],
-                     "flagged": bool(iv.flagged[k])}
+                    {
+                        "t": round(float(iv.start[k]) / self.rate, 5),
+                        "v": [round(float(v), 4) for v in iv.rms[k]],
+                        "thd": [_num(float(x), 5) for x in iv.thd[k]],
+                        "flagged": bool(iv.flagged[k]),
+                    }
                 )
             for agg in m.aggregates:
                 if agg.hz is not None:
                     self.frequency.append({"t": round(agg.t_utc, 3), "hz": round(agg.hz, 5)})
                 else:
                     self.aggregates.append(
-                        {"kind": agg.kind, "t": round(agg.t_utc, 3),
-                         "v": [round(v, 4) for v in agg.rms], "flagged": agg.flagged}
+                        {
+                            "kind": agg.kind,
+                            "t": round(agg.t_utc, 3),
+                            "v": [round(v, 4) for v in agg.rms],
+                            "flagged": agg.flagged,
+                        }
                     )
             for fl in m.flags:
                 self.flags.append(
-                    {"kind": fl.kind, "start_s": round(fl.start / self.rate, 5),
-                     "end_s": round(fl.end / self.rate, 5), "channels": list(fl.channels),
-                     **({"detail": fl.detail} if fl.detail else {})}
+                    {
+                        "kind": fl.kind,
+                        "start_s": round(fl.start / self.rate, 5),
+                        "end_s": round(fl.end / self.rate, 5),
+                        "channels": list(fl.channels),
+                        **({"detail": fl.detail} if fl.detail else {}),
+                    }
                 )
         self.events.extend(u.event for u in frame.updates if u.change == "ended")
         self.captures += len(frame.captures)
         return frame
 
-    def result(self, *, sample_rate: float, nominal_v: float, nominal_hz: float,
-               channels: int, channel_names: tuple[str, ...], source: str,
-               nominal_inferred: bool, duration_s: float) -> dict[str, Any]:
+    def result(
+        self,
+        *,
+        sample_rate: float,
+        nominal_v: float,
+        nominal_hz: float,
+        channels: int,
+        channel_names: tuple[str, ...],
+        source: str,
+        nominal_inferred: bool,
+        duration_s: float,
+    ) -> dict[str, Any]:
         events = sorted(self.events, key=lambda e: e.start)
         return {
             "source": source,
@@ -142,16 +163,22 @@ def render_table(result: dict[str, Any]) -> str:
         lines.append("10/12-cycle RMS [V] per channel: min / mean / max")
         for ch, name in enumerate(result["channel_names"]):
             col = arr[:, ch]
-            lines.append(f"  {name:<6} {col.min():8.2f} {np.sqrt(np.mean(col**2)):8.2f} {col.max():8.2f}")
+            lines.append(
+                f"  {name:<6} {col.min():8.2f} {np.sqrt(np.mean(col**2)):8.2f} {col.max():8.2f}"
+            )
     if result["frequency"]:
         hz = np.array([f["hz"] for f in result["frequency"]])
-        lines.append(f"10-s frequency [Hz]: min {hz.min():.3f}  max {hz.max():.3f}  ({hz.size} intervals)")
+        lines.append(
+            f"10-s frequency [Hz]: min {hz.min():.3f}  max {hz.max():.3f}  ({hz.size} intervals)"
+        )
     lines.append("")
     events = result["events"]
     lines.append(f"events: {len(events)}")
     if events:
-        hdr = f"  {'start s':>9} {'type':<12} {'ch':<6} {'dur s':>8} {'level V':>8} {'pu':>6}  {'IEEE 1159':<26} {'ITIC':<15} {'F47':<5} {'Se':>5}"
-        lines.append(hdr)
+        lines.append(
+            f"  {'start s':>9} {'type':<12} {'ch':<6} {'dur s':>8} {'level V':>8} {'pu':>6}  "
+            f"{'IEEE 1159':<26} {'ITIC':<15} {'F47':<5} {'Se':>5}"
+        )
         for e in events:
             f47 = {"inside": "in", "outside": "out"}.get(e["semi_f47"] or "", "-")
             se = "-" if e["severity"] is None else f"{e['severity']:.2f}"
@@ -166,7 +193,9 @@ def render_table(result: dict[str, Any]) -> str:
     flags = result["flags"]
     lines.append(f"data-quality flags: {len(flags)}")
     for fl in flags[:20]:
-        lines.append(f"  {fl['kind']:<14} {fl['start_s']:.3f}–{fl['end_s']:.3f} s channels {fl['channels']}")
+        lines.append(
+            f"  {fl['kind']:<14} {fl['start_s']:.3f}–{fl['end_s']:.3f} s channels {fl['channels']}"
+        )
     if len(flags) > 20:
         lines.append(f"  ... {len(flags) - 20} more (use --json)")
     return "\n".join(lines)

@@ -21,6 +21,7 @@ import os
 import time
 import tracemalloc
 from collections import defaultdict
+from collections.abc import Iterator
 
 import numpy as np
 
@@ -36,9 +37,9 @@ def make_minute(rate: float, seed: int = 7) -> np.ndarray:
     n = int(rate * 60)
     t = np.arange(n) / rate
     env = np.ones(n)
-    env[(t > 10.0) & (t < 10.2)] = 0.55          # a feeder dip (invented)
-    env[(t > 30.0) & (t < 31.5)] = 1.14          # an inverter swell (invented)
-    env[(t > 45.0) & (t < 45.05)] = 0.02         # a brief interruption (invented)
+    env[(t > 10.0) & (t < 10.2)] = 0.55  # a feeder dip (invented)
+    env[(t > 30.0) & (t < 31.5)] = 1.14  # an inverter swell (invented)
+    env[(t > 45.0) & (t < 45.05)] = 0.02  # a brief interruption (invented)
     phase = 2 * np.pi * 60.0 * t
     v1 = 120 * np.sqrt(2) * env * (np.sin(phase) + 0.03 * np.sin(3 * phase))
     v2 = -v1 + rng.normal(0, 0.2, n)
@@ -53,7 +54,7 @@ def rss_bytes() -> int:
         return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
 
 
-def blocks_for(minute: np.ndarray, minutes: int, block: int):
+def blocks_for(minute: np.ndarray, minutes: int, block: int) -> Iterator[Block]:
     idx = 0
     for _ in range(minutes):
         for s in range(0, minute.shape[0], block):
@@ -78,18 +79,24 @@ def main() -> None:
     ap.add_argument("--minutes", type=int, default=60)
     ap.add_argument("--rate", type=float, default=7680.0)
     ap.add_argument("--block", type=int, default=7680)
-    ap.add_argument("--trace-memory", action="store_true",
-                    help="also trace Python allocations (slows the run: do not read its speed)")
+    ap.add_argument(
+        "--trace-memory",
+        action="store_true",
+        help="also trace Python allocations (slows the run: do not read its speed)",
+    )
     args = ap.parse_args()
     os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-    site = Site(nominal_v=120.0, nominal_hz=60.0, service_type="120/240", channel_names=("L1", "L2"))
-    info = SourceInfo(sample_rate=args.rate, channel_names=site.channel_names,
-                      volts_per_count=np.full(2, 0.01))
+    site = Site(
+        nominal_v=120.0, nominal_hz=60.0, service_type="120/240", channel_names=("L1", "L2")
+    )
+    info = SourceInfo(
+        sample_rate=args.rate, channel_names=site.channel_names, volts_per_count=np.full(2, 0.01)
+    )
     minute = make_minute(args.rate)
     spc = round(args.rate / site.nominal_hz)
 
-    stages, parts = edge_stages(info, site, ReplayTimebase(args.rate))
+    stages, _ = edge_stages(info, site, ReplayTimebase(args.rate))
     per_stage: dict[str, float] = defaultdict(float)
     events = captures = 0
     mem: list[tuple[float, int, int]] = []
@@ -128,8 +135,10 @@ def main() -> None:
     if len(mem) >= 3:
         rss_growth = (mem[-1][2] - mem[1][2]) / 2**20
         traced = (mem[-1][1] - mem[1][1]) / 1024
-        print(f"change from minute {mem[1][0] / 60:.0f} to the end: RSS {rss_growth:+.1f} MiB"
-              + (f", traced {traced:+.1f} KiB" if args.trace_memory else ""))
+        print(
+            f"change from minute {mem[1][0] / 60:.0f} to the end: RSS {rss_growth:+.1f} MiB"
+            + (f", traced {traced:+.1f} KiB" if args.trace_memory else "")
+        )
 
 
 if __name__ == "__main__":
