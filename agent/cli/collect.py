@@ -1,0 +1,31 @@
+"""``halfcycle collect``: the fleet collector."""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import threading
+
+from agent import logs
+from agent.collect.service import Collector, load_collector_settings
+
+
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    p = sub.add_parser(
+        "collect",
+        help="subscribe to the fleet, commit to the recorder store, acknowledge",
+        description="Runs until SIGTERM/SIGINT; logs JSON lines on stderr.",
+    )
+    p.add_argument("--config", required=True, help="collector configuration file (TOML)")
+    p.add_argument("--log-level", default="info", choices=("debug", "info", "warning", "error"))
+    p.set_defaults(func=cmd_collect)
+
+
+def cmd_collect(args: argparse.Namespace) -> int:
+    logs.configure(args.log_level)
+    settings = load_collector_settings(args.config)
+    stop = threading.Event()
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(sig, lambda *_: stop.set())
+    Collector(settings).run(stop)
+    return 0
