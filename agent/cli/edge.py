@@ -22,6 +22,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.add_argument(
         "--fast", action="store_true", help="replayed/simulated sources: do not pace to real time"
     )
+    r.add_argument("--speed", type=float, default=1.0,
+                   help="replayed/simulated sources: run at this multiple of real time")
     r.add_argument("--max-seconds", type=float, help="stop after this much signal [s]")
     r.add_argument(
         "--drain-timeout",
@@ -42,6 +44,7 @@ def cmd_edge_run(args: argparse.Namespace) -> int:
         settings,
         stop=stop,
         pace=not args.fast,
+        speed=args.speed,
         max_seconds=args.max_seconds,
         drain_timeout_s=args.drain_timeout,
     )

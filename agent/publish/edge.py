@@ -315,14 +315,15 @@ def run_edge(
     *,
     stop: threading.Event | None = None,
     pace: bool = True,
+    speed: float = 1.0,
     max_seconds: float | None = None,
     drain_timeout_s: float = 10.0,
     outbox_limits: OutboxLimits | None = None,
 ) -> EdgeResult:
     """Run the agent until the source ends, ``stop`` is set, or ``max_seconds`` of signal.
 
-    ``pace`` sleeps so that replayed and simulated sources run at real time (a live source
-    paces itself). On the way out the pipeline is flushed into the outbox and the publisher
+    ``pace`` sleeps so that replayed and simulated sources run at ``speed`` times real time
+    (a live source paces itself). On the way out the pipeline is flushed into the outbox and the publisher
     gets ``drain_timeout_s`` to deliver what is still unacknowledged.
     """
     stop = stop or threading.Event()
@@ -401,7 +402,7 @@ def run_edge(
             if stop.is_set():
                 break
             if pace and not live:
-                lag = samples / info.sample_rate - (time.monotonic() - t_start)
+                lag = samples / info.sample_rate / speed - (time.monotonic() - t_start)
                 if lag > 0 and stop.wait(lag):
                     break
         push(stages, Frame(None))
