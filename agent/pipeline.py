@@ -133,11 +133,17 @@ class TakeCaptures:
             frame.captures.extend(self.recorder.feed(frame.block))
         for update in frame.updates:
             ev = update.event
+            # The update's own index/utc: the event object may change later (a dip that
+            # becomes an interruption moves its start).
             if update.change == "started":
-                self.recorder.trigger(ev.event_id, "start", ev.start, ev.start_utc)
+                index = ev.start if update.index is None else update.index
+                utc = ev.start_utc if update.utc is None else update.utc
+                self.recorder.trigger(ev.event_id, "start", index, utc)
             elif ev.end is not None and ev.ended_by == "recovery":
-                assert ev.end_utc is not None
-                self.recorder.trigger(ev.event_id, "end", ev.end, ev.end_utc)
+                index = ev.end if update.index is None else update.index
+                utc = update.utc if update.utc is not None else ev.end_utc
+                assert utc is not None
+                self.recorder.trigger(ev.event_id, "end", index, utc)
         if frame.final:
             frame.captures.extend(self.recorder.flush())
         return frame
@@ -177,7 +183,9 @@ def edge_stages(
         pre_cycles=capture.pre_cycles,
         post_cycles=capture.post_cycles,
     )
-    journal = OpenEventJournal(journal_path) if journal_path is not None else None
+    journal = (
+        OpenEventJournal(journal_path, timebase=timebase) if journal_path is not None else None
+    )
     stages: list[Stage] = [Measure(engine), Detect(detector), Classify(site.nominal_hz)]
     if journal is not None:
         stages.append(Journal(journal, timebase))

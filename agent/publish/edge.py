@@ -25,6 +25,7 @@ from agent.acquisition.base import Source, SourceInfo
 from agent.acquisition.clock import ClockModel
 from agent.acquisition.open_source import open_source
 from agent.acquisition.timebase import ReplayTimebase, Timebase
+from agent.events.classify import classify_event
 from agent.events.types import Event
 from agent.measurement.types import BasicIntervals, HalfCycleRms, MeasurementOutput
 from agent.pipeline import Frame, edge_stages, push
@@ -293,12 +294,30 @@ class EdgeSink:
         return frame
 
 
-def _timebase_for(settings: EdgeSettings, source: Source) -> Timebase:
+def source_duration_s(source: Source) -> float | None:
+    """Length of a finite source [s] (replays and scenarios), None for a live one."""
+    rate = source.info.sample_rate
+    for attr in ("frames", "rows"):  # WavSource, CsvSource
+        n = getattr(source, attr, None)
+        if isinstance(n, int):
+            return n / rate
+    scenario = getattr(source, "scenario", None)  # SimSource
+    duration = getattr(scenario, "duration_s", None)
+    return float(duration) if isinstance(duration, int | float) else None
+
+
+def _timebase_for(settings: EdgeSettings, source: Source, speed: float) -> Timebase:
     kind = settings.source.get("kind", str, required=True)
     if kind in _LIVE_KINDS:
         return ClockModel(source.info.sample_rate)
-    # Replayed or simulated samples are stamped as if they were being measured now.
-    return ReplayTimebase(source.info.sample_rate, origin=math.floor(time.time()))
+    # A replayed or simulated source is stamped as if measured now; when it runs faster than
+    # real time its origin moves back so that its last sample lands at the moment it ends,
+    # and no timestamp ever lies in the future (the collector quarantines those).
+    now = time.time()
+    duration = source_duration_s(source)
+    if duration is not None and speed > 1.0:
+        now -= duration * (1.0 - 1.0 / speed)
+    return ReplayTimebase(source.info.sample_rate, origin=now)
 
 
 @dataclass
@@ -341,7 +360,7 @@ def run_edge(
             "site.channels",
             f"{site.channels} channels declared, the source has {info.channels}",
         )
-    timebase = _timebase_for(settings, source)
+    timebase = _timebase_for(settings, source, speed if pace else math.inf)
     outbox_path = settings.state_dir / "outbox.sqlite"
     outbox = Outbox(outbox_path, site.device_id, site.site_id, limits=outbox_limits)
     stages, parts = edge_stages(
@@ -363,6 +382,8 @@ def run_edge(
         max_packet_bytes=mqtt_config.max_packet_bytes,
     )
     recovered = parts.journal.recover(time.time())
+    for ev in recovered:
+        classify_event(ev, site.nominal_hz)
     sink.startup(recovered, outbox.previous_run)
     parts.journal.acknowledge(ev.event_id for ev in recovered)
     stages.append(sink)
