@@ -63,6 +63,9 @@ class Event:
     time_error_s: float | None = None
     sync_state: str | None = None
     classification: dict[str, Any] | None = None
+    # UTC start [s] of the below-dip-threshold period enclosing an interruption (the moment
+    # the event was first announced as a dip); None for dips and swells.
+    enclosing_start_utc: float | None = None
 
     @property
     def is_open(self) -> bool:
@@ -81,10 +84,17 @@ class Event:
 
 @dataclass
 class EventUpdate:
-    """The detector's output: an event that just started or just ended."""
+    """The detector's output: an event that just started or just ended.
+
+    ``index``/``utc`` are the sample index and UTC of this change as it happened (the event's
+    start for "started", its end for "ended"); use them for capture triggers, since the event
+    object itself may change later (a dip that becomes an interruption moves its start).
+    """
 
     change: Literal["started", "ended"]
     event: Event
+    index: float | None = None
+    utc: float | None = None
 
 
 @dataclass
