@@ -23,7 +23,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import paho.mqtt.client as mqtt
 import structlog
@@ -32,6 +32,7 @@ from paho.mqtt.properties import Properties
 
 from agent.config import Section, load_toml
 from agent.publish.mqtt import PublisherConfig
+from agent.store.export import Precision
 from agent.store.recorder import Item, RecorderStore
 from agent.wire import codec, topics
 from agent.wire.errors import WireError
@@ -51,7 +52,7 @@ class ExportSettings:
     token: str
     org: str
     bucket: str
-    precision: str = "ms"
+    precision: Precision = "ms"
 
 
 @dataclass
@@ -108,7 +109,7 @@ def load_collector_settings(path: str | Path) -> CollectorSettings:
             token=ex.get("token", str, ""),
             org=ex.get("org", str, "halfcycle"),
             bucket=ex.get("bucket", str, "halfcycle"),
-            precision=ex.choice("precision", ("s", "ms", "us", "ns"), "ms"),
+            precision=cast(Precision, ex.choice("precision", ("s", "ms", "us", "ns"), "ms")),
         )
     retention = store.optional("trend_retention_days", float)
     batch_max = ingest.get("batch_max", int, 500)
@@ -289,37 +290,66 @@ class Collector:
         sites: dict[str, str] = {}
         now = self.clock()
         for rec in batch:
-            device = None
+            device: str | None = None
             try:
                 site, device, _kind = topics.parse_topic(rec.topic)
                 msg = codec.decode(rec.payload, max_bytes=self.settings.max_payload_bytes)
                 check_message(msg, rec.topic, now, self.settings.future_tolerance_s)
             except WireError as exc:
-                self._dead(store, rec, exc.reason, exc.code, device)
+                reason = f"{exc.code}: {exc.reason}"
+                trusted = self._trusted_envelope(rec, exc) if device is not None else None
+                if trusted is None:
+                    self._dead(store, rec, exc.reason, exc.code, device)
+                else:
+                    # Quarantined per device, and its seq accounted for (see Item.reject).
+                    assert device is not None
+                    sites[device] = site
+                    items.append(Item(message=trusted, topic=rec.topic, raw=rec.payload,
+                                      raw_size=len(rec.payload), received_at=rec.at,
+                                      reject=reason))
+                    self.stats.dead_letters += 1
+                    self.stats.by_reason[exc.code] = self.stats.by_reason.get(exc.code, 0) + 1
                 continue
             sites[device] = site
-            items.append(
-                Item(
-                    message=msg,
-                    topic=rec.topic,
-                    raw=rec.payload,
-                    raw_size=len(rec.payload),
-                    received_at=rec.at,
-                )
-            )
+            items.append(Item(message=msg, topic=rec.topic, raw=rec.payload,
+                              raw_size=len(rec.payload), received_at=rec.at))
         upto = store.commit_batch(items) if items else {}
         self.stats.committed += len(items)
         self.stats.batches += 1
-        for (device, epoch), seq in upto.items():
-            site = sites.get(device)
-            if site is None or seq < 1:
+        for (dev, epoch), seq in upto.items():
+            ack_site = sites.get(dev)
+            if ack_site is None or seq < 1:
                 continue
-            body = codec.ack_message(site, device, epoch, seq, self.settings.collector_id)
+            body = codec.ack_message(ack_site, dev, epoch, seq, self.settings.collector_id)
             self._client.publish(
-                topics.ack_topic(site, device), codec.encode(body), qos=1, retain=True
+                topics.ack_topic(ack_site, dev), codec.encode(body), qos=1, retain=True
             )
             self.stats.acks_published += 1
         return upto
+
+    def _trusted_envelope(self, rec: Received, exc: WireError) -> dict[str, Any] | None:
+        """The envelope of a message that failed validation, if it can be trusted.
+
+        Trusted means: it unpacks to a map whose device, site and type match the topic (the
+        broker's ACL lets a device write only its own topics), with a valid epoch and a
+        sequence number. A mismatch ("identity") or bytes that are not msgpack are not.
+        """
+        if exc.code in ("identity", "not_msgpack", "oversized"):
+            return None
+        try:
+            raw = codec.unpack(rec.payload, max_bytes=self.settings.max_payload_bytes)
+            site, device, kind = topics.parse_topic(rec.topic)
+        except WireError:
+            return None
+        if not isinstance(raw, dict):
+            return None
+        seq, epoch = raw.get("seq"), raw.get("epoch")
+        if (raw.get("device") != device or raw.get("site") != site or raw.get("type") != kind
+                or not topics.valid_id(epoch) or isinstance(seq, bool)
+                or not isinstance(seq, int) or not 1 <= seq < 2**53):
+            return None
+        return {"v": raw.get("v"), "type": kind, "device": device, "site": site,
+                "epoch": epoch, "seq": seq}
 
     def _acknowledge(self, batch: list[Received]) -> None:
         for rec in batch:  # in arrival order
@@ -367,7 +397,9 @@ class Collector:
             self.settings.store_url, self.settings.captures_dir, keep_trend=self.settings.keep_trend
         )
         try:
-            exporter = TimeSeriesExporter(store, ex.url, ex.token, ex.org, ex.bucket, ex.precision)  # type: ignore[arg-type]
+            exporter = TimeSeriesExporter(
+                store, ex.url, ex.token, ex.org, ex.bucket, ex.precision
+            )
             with exporter:
                 exporter.run(stop)
         finally:

@@ -225,6 +225,7 @@ class EdgeSink:
                 last_ran=last_ran,
                 t=self.clock(),
                 reason=reason,
+                site_model=codec.site_model_body(self.site) if state == "online" else None,
             ),
             Lane.PRIORITY,
         )

@@ -198,6 +198,7 @@ class Publisher:
         self._failures = 0
         self._server_max_packet: int | None = None
         self._last_resend_check = 0.0
+        self._overdue_backlog = False
         self._last_heartbeat = 0.0
         self._ack_topic = topics.ack_topic(outbox.site, outbox.device)
         self._presence_topic = topics.topic(outbox.site, outbox.device, topics.PRESENCE_KIND)
@@ -366,13 +367,18 @@ class Publisher:
         room = self.config.max_inflight - len(self._inflight)
         if room <= 0:
             return
-        include_overdue = now - self._last_resend_check >= self.config.resend_check_s
+        # The overdue scan walks every unacknowledged row, so it runs at most every
+        # resend_check_s -- unless the last scan found overdue rows: then a backlog is being
+        # resent and the window is refilled at once (otherwise a collector that missed a large
+        # backlog would get it back at one window per resend_check_s).
+        include_overdue = (self._overdue_backlog
+                           or now - self._last_resend_check >= self.config.resend_check_s)
         if include_overdue:
             self._last_resend_check = now
-        rows = self.outbox.due(
-            room, ack_timeout_s=self.config.ack_timeout_s,
-            ack_timeout_max_s=self.config.ack_timeout_max_s,
-            skip=tuple(self._inflight.values()), include_overdue=include_overdue)
+        rows = self.outbox.due(room, skip=tuple(self._inflight.values()),
+                               include_overdue=include_overdue)
+        if include_overdue:
+            self._overdue_backlog = any(r.published_at is not None for r in rows)
         published: list[int] = []
         limit = self._packet_limit()
         for row in rows:
@@ -394,7 +400,8 @@ class Publisher:
             else:
                 break  # queue full or connection gone: the row stays due
         if published:
-            self.outbox.mark_published(published)
+            self.outbox.mark_published(published, ack_timeout_s=self.config.ack_timeout_s,
+                                       ack_timeout_max_s=self.config.ack_timeout_max_s)
             self.stats.published += len(published)
 
     def step(self, timeout: float = 0.05) -> None:
@@ -405,8 +412,8 @@ class Publisher:
                 if now >= self._next_attempt:
                     self._try_connect(now)
             elif now - self._connecting_since > self.config.connect_timeout_s:
-                self._client.disconnect()
                 self._connect_failed(now, "no CONNACK within connect timeout")
+                self._client.disconnect()
         rc = self._client.loop(timeout=timeout)
         if rc == mqtt.MQTT_ERR_NO_CONN and not self._connected:
             time.sleep(min(timeout, max(0.0, self._next_attempt - self._now())))

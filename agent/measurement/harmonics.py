@@ -1,0 +1,180 @@
+"""Harmonic subgroups and THD on 10/12-cycle windows.
+
+References
+----------
+IEC 61000-4-7 Ed.2 clause 3 and 5.6: 10/12-cycle window (5 Hz bins), harmonic subgroup =
+sqrt of the sum of squares of the harmonic bin and its two neighbours; THD = sqrt(sum over
+h = 2..H of Ysg_h²) / Ysg_1, H = 40 (EN 50160 also uses 40). IEC 61000-4-30 Ed.3 clause 5.8.
+Catmull-Rom interpolation: Catmull & Rom (1974), "A class of local interpolating splines".
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+
+F64 = npt.NDArray[np.float64]
+C128 = npt.NDArray[np.complex128]
+
+
+def max_harmonic_order(sample_rate: float, fundamental_hz: float, limit: int = 40,
+                       usable_fraction: float = 0.45) -> int:
+    """Highest harmonic order h with h * f1 < usable_fraction * fs, capped at ``limit``."""
+    return int(min(limit, np.ceil(usable_fraction * sample_rate / fundamental_hz) - 1))
+
+
+def resample_points(n_samples: int) -> int:
+    """Power of two >= the samples in the window (no decimation, so no aliasing)."""
+    return int(1 << int(np.ceil(np.log2(max(n_samples, 2)))))
+
+
+def catmull_rom(x: F64, positions: F64, dtype: type[np.floating] = np.float64
+                ) -> npt.NDArray[np.floating]:
+    """Catmull-Rom cubic interpolation of ``x`` (n, channels) at fractional ``positions``.
+
+    ``positions`` may have any shape; the result has shape (channels,) + positions.shape.
+    Positions must be >= 1 and leave two samples of margin on the right. ``dtype`` float32
+    halves the cost at a relative rounding of about 1e-7.
+    """
+    i = positions.astype(np.intp)                   # floor: positions are positive
+    f = (positions - i).astype(dtype)
+    f2 = f * f
+    hf3 = 0.5 * f2 * f
+    w0 = f2 - hf3 - 0.5 * f                         # Catmull-Rom weights of the 4 taps
+    w1 = 3.0 * hf3 - 2.5 * f2 + 1.0
+    w3 = hf3 - 0.5 * f2
+    w2 = 1.0 - w0 - w1 - w3                         # the weights sum to one
+    xt = np.ascontiguousarray(x.T, dtype=dtype)
+    out = np.empty((xt.shape[0], *positions.shape), dtype=dtype)
+    for c in range(xt.shape[0]):
+        row, o = xt[c], out[c]
+        np.multiply(w0, row.take(i - 1), out=o)
+        o += w1 * row.take(i)
+        o += w2 * row.take(i + 1)
+        o += w3 * row.take(i + 2)
+    return out
+
+
+_GL_X, _GL_W = np.polynomial.legendre.leggauss(16)
+
+
+def catmull_rom_response(omega: npt.ArrayLike) -> F64:
+    """Frequency response K(omega) [dimensionless] of the Catmull-Rom kernel (omega in rad/sample).
+
+    Resampling a tone exp(j omega n) with the kernel gives K(omega) times the tone plus images
+    at omega + 2 pi m (Poisson summation); the images fall between harmonic subgroups or above
+    the 40th, so dividing each subgroup by K restores its magnitude.
+    Computed as 2 * integral_0^2 k(t) cos(omega t) dt by 16-point Gauss-Legendre per piece
+    (exact for the cubic pieces to rounding at these frequencies).
+    """
+    w = np.asarray(omega, dtype=np.float64)[..., None]
+    t1 = 0.5 * (_GL_X + 1.0)           # nodes on [0, 1]
+    t2 = t1 + 1.0                      # nodes on [1, 2]
+    k1 = 1.5 * t1**3 - 2.5 * t1**2 + 1.0
+    k2 = -0.5 * t2**3 + 2.5 * t2**2 - 4.0 * t2 + 2.0
+    return np.asarray(np.sum(_GL_W * (k1 * np.cos(w * t1) + k2 * np.cos(w * t2)), axis=-1))
+
+
+_K_GRID = np.linspace(0.0, np.pi, 4097)
+_K_TABLE = catmull_rom_response(_K_GRID)
+
+
+def catmull_rom_response_fast(omega: npt.ArrayLike) -> F64:
+    """:func:`catmull_rom_response` by linear interpolation in a 4097-point table over
+    [0, pi] rad/sample (interpolation error < 1e-7)."""
+    return np.asarray(np.interp(np.asarray(omega, dtype=np.float64), _K_GRID, _K_TABLE))
+
+
+def window_spectra(x: F64, start: F64, end: F64, points: int,
+                   dtype: type[np.floating] = np.float64) -> C128:
+    """Spectra of windows [start, end) resampled to ``points`` equally spaced samples.
+
+    Parameters
+    ----------
+    x : (n, channels)  [V]
+    start, end : (m,)  [sample index into x]; each window is a whole number of cycles
+    points : int, power of two
+    dtype : interpolation precision (float32: about 1e-7 relative rounding, half the cost)
+
+    Returns
+    -------
+    spectra : (m, channels, points//2 + 1) complex, scaled so a bin holds the peak amplitude
+    """
+    frac = np.arange(points) / points
+    pos = start[:, None] + (end - start)[:, None] * frac[None, :]
+    seg = catmull_rom(x, pos, dtype).astype(np.float64, copy=False)  # (channels, m, points)
+    return np.asarray(np.fft.rfft(seg, axis=-1).transpose(1, 0, 2) * (2.0 / points))
+
+
+def harmonic_subgroups(spectra: C128, cycles: npt.ArrayLike, max_order: int,
+                       span: npt.ArrayLike | None = None) -> F64:
+    """Harmonic subgroup magnitudes Ysg_h, h = 1..max_order.
+
+    Parameters
+    ----------
+    spectra : (m, channels, bins)  amplitude spectra of windows of ``cycles`` cycles
+    cycles : (m,) int, cycles per window (bin of harmonic h = h * cycles)
+    span : (m,) window lengths [samples] of the original signal; when given, each subgroup is
+        divided by the Catmull-Rom response at its frequency (see :func:`catmull_rom_response`)
+
+    Returns
+    -------
+    ysg : (m, channels, max_order)  [V peak]
+
+    References
+    ----------
+    IEC 61000-4-7 Ed.2 clause 5.6 (harmonic subgroup).
+    """
+    cyc = np.asarray(cycles, dtype=np.intp)
+    h = np.arange(1, max_order + 1)
+    centre = cyc[:, None] * h[None, :]                            # (m, H)
+    idx = np.minimum(centre[:, :, None] + np.array([-1, 0, 1]), spectra.shape[-1] - 1)
+    if np.all(cyc == cyc[0]):
+        picked = spectra[:, :, idx[0]]                              # (m, channels, H, 3)
+    else:
+        rows = np.arange(spectra.shape[0])[:, None, None]
+        picked = np.moveaxis(np.moveaxis(spectra, 1, 2)[rows, idx], 3, 1)
+    ysg = np.sqrt(np.sum(picked.real**2 + picked.imag**2, axis=-1))  # (m, channels, H)
+    if span is not None:
+        omega = 2.0 * np.pi * centre / np.asarray(span, dtype=np.float64)[:, None]
+        ysg = ysg / catmull_rom_response_fast(omega)[:, None, :]
+    return np.asarray(ysg)
+
+
+def thd_from_subgroups(ysg: F64) -> F64:
+    """THD [fraction] = sqrt(sum_{h>=2} Ysg_h²) / Ysg_1 along the last axis; NaN where Ysg_1 = 0.
+
+    References
+    ----------
+    IEC 61000-4-7 Ed.2 clause 3 (THDS, subgroup total harmonic distortion).
+    """
+    fund = ysg[..., 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.sqrt(np.sum(ysg[..., 1:] ** 2, axis=-1)) / fund
+    return np.asarray(np.where(fund > 0, out, np.nan))
+
+
+def window_thd(x: npt.ArrayLike, start: npt.ArrayLike, end: npt.ArrayLike, cycles: npt.ArrayLike,
+               sample_rate: float, fundamental_hz: float, max_order: int = 40) -> F64:
+    """THD [fraction] of each window of ``cycles`` whole cycles between ``start`` and ``end``.
+
+    Parameters
+    ----------
+    x : (n,) or (n, channels)  [V]
+    start, end : (m,)  [sample index]
+    cycles : (m,) int
+    sample_rate : [S/s]; fundamental_hz : [Hz], nominal, for the usable harmonic range
+
+    Returns
+    -------
+    thd : (m, channels)  [fraction]
+    """
+    a = np.asarray(x, dtype=np.float64)
+    if a.ndim == 1:
+        a = a[:, None]
+    s = np.atleast_1d(np.asarray(start, dtype=np.float64))
+    e = np.atleast_1d(np.asarray(end, dtype=np.float64))
+    points = resample_points(int(np.ceil(np.max(e - s))) + 1)
+    order = max_harmonic_order(sample_rate, fundamental_hz, max_order)
+    spec = window_spectra(a, s, e, points)
+    return thd_from_subgroups(harmonic_subgroups(spec, cycles, order, e - s))

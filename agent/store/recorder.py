@@ -1,0 +1,1005 @@
+"""The collector's recorder store: devices, aggregates, trend, events, captures, gaps,
+dead letters, idempotent receipt bookkeeping and the export queue, over SQLite or PostgreSQL.
+
+Every decoded device message has an envelope ``v, type, device, site, epoch, seq``; ``seq``
+counts contiguously from ``first_seq`` within one ``epoch`` at the source. :meth:`commit_batch`
+writes a whole batch in ONE transaction and returns, per touched ``(device, epoch)``, the
+highest contiguous committed seq (``committed_upto``), counting seqs announced by ``gap``
+messages as accounted for. The collector publishes that as its retained ack, so the edge may
+drop those messages from its outbox: nothing is acknowledged before it is durable.
+
+Concurrency: several collectors may share one PostgreSQL database. Each batch first locks the
+``streams`` rows of the streams it touches, in sorted order (no deadlock cycles), so batches of
+the same stream are applied one after another and each sees the other's committed rows. That
+also serialises the capture chunks of one capture (they travel in one stream), so staging in
+``capture_chunks`` completes exactly once whichever collectors received the chunks.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import json
+import os
+import re
+import time
+import uuid
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, NamedTuple
+
+from agent.events.types import Capture
+from agent.store.db import Database, StoreError
+
+MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
+EVENT_STATES = ("open", "closed")
+# The event schema says ``change: started | ended``; ``state: open | closed`` is accepted too.
+_CHANGE_STATE = {"started": "open", "ended": "closed"}
+DEVICE_STATES = ("online", "offline", "unknown")
+# Status fields kept with the device (the latest report wins).
+STATUS_KEYS = ("state", "t", "agent_version", "uptime_s", "last_ran", "outbox_depth", "clock",
+               "reason")
+ENVELOPE_KEYS = ("v", "type", "device", "site", "epoch", "seq")
+CHUNK_KEYS = ("capture_id", "event_id", "index", "total", "sha256", "data")
+# Presence messages (retained status, MQTT will) carry this seq, outside the sequence.
+PRESENCE_SEQ = 0
+# The wire's limits (schemas/*.schema.json $defs): seq stays exact in JSON; ids are topic levels.
+MAX_SEQ = 2**53 - 1
+ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}\Z")
+SITE_MODEL_KEYS = ("nominal_v", "nominal_hz", "service_type", "channel_names",
+                   "measurement_point", "feeder", "transformer", "labels")
+
+_MIGRATIONS: list[tuple[int, str]] = [
+    (1, """
+CREATE TABLE IF NOT EXISTS devices (
+    device TEXT PRIMARY KEY,
+    site TEXT NOT NULL,
+    model TEXT NOT NULL DEFAULT '',
+    status TEXT NOT NULL DEFAULT '',
+    first_seen {double} NOT NULL,
+    last_seen {double} NOT NULL,
+    state TEXT NOT NULL DEFAULT 'unknown',
+    state_since {double} NOT NULL
+);
+CREATE TABLE IF NOT EXISTS streams (
+    device TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    committed_upto {bigint} NOT NULL,
+    first_seen {double} NOT NULL,
+    updated_at {double} NOT NULL,
+    PRIMARY KEY (device, epoch)
+);
+CREATE TABLE IF NOT EXISTS received (
+    device TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    type TEXT NOT NULL,
+    received_at {double} NOT NULL,
+    PRIMARY KEY (device, epoch, seq)
+);
+CREATE TABLE IF NOT EXISTS aggregates (
+    device TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    site TEXT NOT NULL,
+    kind TEXT,
+    t_utc {double},
+    duration_s {double},
+    payload TEXT NOT NULL,
+    received_at {double} NOT NULL,
+    PRIMARY KEY (device, epoch, seq)
+);
+CREATE INDEX IF NOT EXISTS aggregates_device_t ON aggregates (device, t_utc);
+CREATE TABLE IF NOT EXISTS trend (
+    device TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    site TEXT NOT NULL,
+    t_utc {double},
+    payload TEXT NOT NULL,
+    received_at {double} NOT NULL,
+    PRIMARY KEY (device, epoch, seq)
+);
+CREATE INDEX IF NOT EXISTS trend_t ON trend (t_utc);
+CREATE TABLE IF NOT EXISTS events (
+    event_id TEXT PRIMARY KEY,
+    device TEXT NOT NULL,
+    site TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    kind TEXT,
+    state TEXT NOT NULL,
+    channels TEXT NOT NULL,
+    start_utc {double},
+    end_utc {double},
+    duration_s {double},
+    level_v {double},
+    level_pu {double},
+    thresholds TEXT NOT NULL,
+    classification TEXT NOT NULL,
+    classifier_version TEXT,
+    payload TEXT NOT NULL,
+    first_received {double} NOT NULL,
+    updated_at {double} NOT NULL
+);
+CREATE INDEX IF NOT EXISTS events_device_start ON events (device, start_utc);
+CREATE TABLE IF NOT EXISTS captures (
+    capture_id TEXT PRIMARY KEY,
+    event_id TEXT,
+    device TEXT NOT NULL,
+    site TEXT NOT NULL,
+    sha256 TEXT NOT NULL,
+    size {bigint} NOT NULL,
+    file_name TEXT NOT NULL,
+    meta TEXT NOT NULL,
+    completed_at {double} NOT NULL
+);
+CREATE INDEX IF NOT EXISTS captures_event ON captures (event_id);
+CREATE TABLE IF NOT EXISTS capture_chunks (
+    capture_id TEXT NOT NULL,
+    idx INTEGER NOT NULL,
+    total INTEGER NOT NULL,
+    sha256 TEXT NOT NULL,
+    event_id TEXT,
+    device TEXT NOT NULL,
+    site TEXT NOT NULL,
+    data {blob} NOT NULL,
+    meta TEXT NOT NULL,
+    received_at {double} NOT NULL,
+    PRIMARY KEY (capture_id, idx)
+);
+CREATE TABLE IF NOT EXISTS gaps (
+    device TEXT NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    site TEXT NOT NULL,
+    lane TEXT,
+    first_seq {bigint} NOT NULL,
+    last_seq {bigint} NOT NULL,
+    count {bigint},
+    reason TEXT,
+    payload TEXT NOT NULL,
+    received_at {double} NOT NULL,
+    PRIMARY KEY (device, epoch, seq)
+);
+CREATE INDEX IF NOT EXISTS gaps_range ON gaps (device, epoch, last_seq);
+CREATE TABLE IF NOT EXISTS dead_letters (
+    id {autoid},
+    topic TEXT NOT NULL,
+    raw {blob} NOT NULL,
+    reason TEXT NOT NULL,
+    device TEXT,
+    site TEXT,
+    received_at {double} NOT NULL
+);
+CREATE TABLE IF NOT EXISTS export_queue (
+    id {autoid},
+    kind TEXT NOT NULL,
+    device TEXT NOT NULL,
+    site TEXT NOT NULL,
+    ref TEXT NOT NULL,
+    payload TEXT NOT NULL,
+    created_at {double} NOT NULL,
+    claimed_until {double},
+    claim_token TEXT
+)
+"""),
+]
+
+
+@dataclass
+class Item:
+    """One received message for :meth:`RecorderStore.commit_batch`.
+
+    ``message`` is the decoded dict; ``raw`` the bytes as received (kept if the message has
+    to be dead-lettered); ``received_at`` the collector's UTC time [s] (now if None);
+    ``raw_size`` is informational (not stored).
+    """
+
+    message: Mapping[str, Any]
+    topic: str = ""
+    raw: bytes | None = None
+    raw_size: int | None = None
+    received_at: float | None = None
+    # Set by the collector for a message whose envelope it trusts (the topic names the same
+    # device) but whose body failed validation: it is dead-lettered with this reason and its
+    # sequence number still counts as received, so the device's outbox is not stalled by a
+    # message that would fail again on every resend.
+    reject: str | None = None
+
+
+class ExportRow(NamedTuple):
+    """One queued export as :mod:`agent.store.export` reads it: ``(id, kind, payload)``.
+    ``kind`` is the message type (aggregate, summary, event, status, gap, capture) and
+    ``payload`` the stored message (bytes as ``{"$base64": ...}``; a capture row holds the
+    capture's metadata and file name, not its samples)."""
+
+    id: int
+    kind: str
+    payload: dict[str, Any]
+
+
+class BadMessage(ValueError):
+    """A message that cannot be stored as what it claims to be (it is dead-lettered)."""
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, bytes | bytearray | memoryview):
+        return {"$base64": base64.b64encode(bytes(value)).decode("ascii")}
+    if isinstance(value, tuple | set | frozenset):
+        return list(value)
+    if hasattr(value, "tolist"):  # numpy arrays and scalars
+        return value.tolist()
+    raise TypeError(f"cannot store {type(value).__name__} as JSON")
+
+
+def to_json(value: Any) -> str:
+    """JSON text for storage; bytes become ``{"$base64": ...}``; NaN kept (Python reads it)."""
+    return json.dumps(value, default=_json_default, sort_keys=True, separators=(",", ":"))
+
+
+def from_json(text: str | None) -> Any:
+    return json.loads(text) if text else None
+
+
+def _opt_float(msg: Mapping[str, Any], *keys: str) -> float | None:
+    for key in keys:
+        value = msg.get(key)
+        if value is None:
+            continue
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise BadMessage(f"{key} must be a number, got {type(value).__name__}")
+        return float(value)
+    return None
+
+
+def _opt_str(msg: Mapping[str, Any], key: str) -> str | None:
+    value = msg.get(key)
+    if value is None:
+        return None
+    if not isinstance(value, str):
+        raise BadMessage(f"{key} must be a string, got {type(value).__name__}")
+    if "\x00" in value:  # PostgreSQL text cannot hold NUL
+        raise BadMessage(f"{key} contains a NUL character")
+    return value
+
+
+def _safe_text(value: str) -> str:
+    """Text for a dead letter's own columns: whatever the input was, it must store."""
+    return value.replace("\x00", "\\x00")
+
+
+def _int(msg: Mapping[str, Any], key: str, low: int = 0, high: int = MAX_SEQ) -> int:
+    value = msg.get(key)
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise BadMessage(f"{key} must be an integer, got {value!r}")
+    if not low <= value <= high:
+        raise BadMessage(f"{key} {value} is outside {low}..{high}")
+    return value
+
+
+def envelope(msg: Mapping[str, Any]) -> tuple[str, str, str, str, int]:
+    """``(type, device, site, epoch, seq)`` of a message, or :class:`BadMessage`."""
+    if not isinstance(msg, Mapping):
+        raise BadMessage(f"message must be a map, got {type(msg).__name__}")
+    missing = [k for k in ENVELOPE_KEYS if k not in msg]
+    if missing:
+        raise BadMessage(f"missing envelope field(s): {', '.join(missing)}")
+    kind, device, site, epoch = msg["type"], msg["device"], msg["site"], msg["epoch"]
+    if kind not in MESSAGE_TYPES:
+        raise BadMessage(f"unknown message type {kind!r}"[:200])
+    for name, value in (("device", device), ("site", site), ("epoch", epoch)):
+        if not valid_id(value):
+            raise BadMessage(f"{name} {value!r} is not an id (1-64 of A-Z a-z 0-9 _ . -)"[:200])
+    return kind, device, site, epoch, _int(msg, "seq")
+
+
+def valid_id(value: object) -> bool:
+    """Site, device and epoch ids as the wire schemas define them (one MQTT topic level)."""
+    return isinstance(value, str) and bool(ID_RE.match(value))
+
+
+def fsync_dir(path: Path) -> None:
+    """Make a rename or file creation inside ``path`` durable (POSIX)."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def write_file_durably(directory: Path, name: str, data: bytes) -> Path:
+    """Write ``data`` as ``directory/name`` via a temporary file, fsync file and directory."""
+    directory.mkdir(parents=True, exist_ok=True)
+    final = directory / name
+    tmp = directory / f".{name}.{os.getpid()}.{uuid.uuid4().hex}.tmp"
+    with tmp.open("wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, final)
+    fsync_dir(directory)
+    return final
+
+
+class RecorderStore:
+    """The recorder store over one database connection (one per thread or process).
+
+    ``url``: ``sqlite:///path.db`` or ``postgresql://...``. ``captures_dir``: where
+    reassembled captures are kept as ``<sha256>.bin`` (shared storage when several collectors
+    share a PostgreSQL database). ``keep_trend``: store per-second ``summary`` messages in
+    ``trend`` (they are exported either way). ``first_seq``: the first seq of every epoch at
+    the source (``committed_upto`` starts at ``first_seq - 1``).
+    """
+
+    def __init__(self, url: str, captures_dir: str | Path, *, keep_trend: bool = True,
+                 first_seq: int = 1, busy_timeout_s: float = 30.0, migrate: bool = True) -> None:
+        self.db = Database(url, busy_timeout_s=busy_timeout_s)
+        self.captures_dir = Path(captures_dir)
+        self.keep_trend = keep_trend
+        self.first_seq = first_seq
+        self._lock_suffix = " FOR UPDATE" if self.db.dialect == "postgresql" else ""
+        if migrate:
+            try:
+                self.migrate()
+            except BaseException:
+                self.db.close()
+                raise
+
+    # --- lifecycle ------------------------------------------------------------------------
+
+    def migrate(self) -> int:
+        """Bring the schema up to date; safe to run again and from several collectors."""
+        return self.db.migrate(_MIGRATIONS)
+
+    @staticmethod
+    def latest_schema_version() -> int:
+        return _MIGRATIONS[-1][0]
+
+    def close(self) -> None:
+        self.db.close()
+
+    def __enter__(self) -> RecorderStore:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # --- the batch commit -----------------------------------------------------------------
+
+    def commit_batch(self, items: Iterable[Item | Mapping[str, Any]]) -> dict[tuple[str, str], int]:
+        """Store a batch in one transaction; return ``committed_upto`` per touched stream.
+
+        Redelivered messages (same device, epoch, seq) change nothing. A message whose
+        envelope is valid but whose body cannot be stored is dead-lettered (with its raw
+        bytes) and still counts as received, so it is acknowledged, not lost; a message
+        without a usable envelope is dead-lettered and touches no stream.
+        """
+        batch = [it if isinstance(it, Item) else Item(message=it) for it in items]
+        now = time.time()
+        return self.db.run_in_transaction(lambda db: self._commit(db, batch, now))
+
+    def _commit(self, db: Database, batch: list[Item], now: float) -> dict[tuple[str, str], int]:
+        parsed: list[tuple[Item, tuple[str, str, str, str, int], float]] = []
+        presence: list[tuple[Item, str, str, float]] = []
+        for item in batch:
+            at = item.received_at if item.received_at is not None else now
+            try:
+                env = envelope(item.message)
+                if env[4] < self.first_seq:
+                    if env[0] != "status" or env[4] != PRESENCE_SEQ:
+                        raise BadMessage(f"seq {env[4]} is below the first seq {self.first_seq}"
+                                         " and only presence status may use it")
+                    presence.append((item, env[1], env[2], at))
+                else:
+                    parsed.append((item, env, at))
+            except BadMessage as exc:
+                self._dead_letter_item(db, item, str(exc), at)
+
+        # Lock every touched stream first, in sorted order (see module docstring).
+        upto: dict[tuple[str, str], int] = {}
+        for device, epoch in sorted({(env[1], env[3]) for _, env, _ in parsed}):
+            db.execute("INSERT INTO streams (device, epoch, committed_upto, first_seen, updated_at)"
+                       " VALUES (?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
+                       (device, epoch, self.first_seq - 1, now, now))
+            row = db.query_one("SELECT committed_upto FROM streams WHERE device = ? AND epoch = ?"
+                               + self._lock_suffix, (device, epoch))
+            assert row is not None
+            upto[(device, epoch)] = int(row[0])
+
+        seen: dict[str, tuple[str, float]] = {}
+        for _, (_, device, site, _, _), at in parsed:
+            if device not in seen or at > seen[device][1]:
+                seen[device] = (site, at)
+        for device in sorted(seen):
+            self._touch_device(db, device, *seen[device])
+
+        # Presence is outside the sequence: applied every time, never deduplicated or acked.
+        for item, device, site, at in presence:
+            self._touch_device(db, device, site, at)
+            self._apply_status(db, device, site, item.message, at)
+            self._enqueue(db, "status", device, site, f"{device}/presence", item.message, at)
+
+        refused: tuple[type[Exception], ...] = (BadMessage, TypeError, ValueError,
+                                                OverflowError, *db.data_errors)
+        for item, env, at in parsed:
+            kind, device, site, epoch, seq = env
+            if seq <= upto[(device, epoch)]:
+                # Already committed or announced as dropped (a gap range never covers a message
+                # still to be sent): a redelivery, even after prune_received().
+                continue
+            received = ("INSERT INTO received (device, epoch, seq, type, received_at)"
+                        " VALUES (?, ?, ?, ?, ?) ON CONFLICT DO NOTHING")
+            # A savepoint per message: one that the database refuses (a value it cannot hold)
+            # is dead-lettered alone instead of failing the whole batch again and again.
+            db.execute("SAVEPOINT item")
+            try:
+                if db.execute(received, (device, epoch, seq, kind, at)).rowcount == 1:
+                    if item.reject is not None:
+                        self._dead_letter_item(db, item, item.reject[:1000], at, device, site)
+                    else:
+                        self._apply(db, kind, device, site, epoch, seq, item.message, at)
+            except refused as exc:
+                db.execute("ROLLBACK TO SAVEPOINT item")
+                db.execute(received, (device, epoch, seq, kind, at))
+                self._dead_letter_item(db, item, f"{kind}: {exc}"[:1000], at, device, site)
+            db.execute("RELEASE SAVEPOINT item")
+
+        for key in upto:
+            new = self._advance(db, key[0], key[1], upto[key])
+            if new != upto[key]:
+                db.execute("UPDATE streams SET committed_upto = ?, updated_at = ?"
+                           " WHERE device = ? AND epoch = ?", (new, now, key[0], key[1]))
+                upto[key] = new
+        return upto
+
+    _NEW_DEVICE = ("INSERT INTO devices (device, site, model, first_seen, last_seen, state,"
+                   " state_since) VALUES (?, ?, '', ?, ?, 'unknown', ?)")
+
+    def _ensure_device(self, db: Database, device: str, site: str, t: float) -> None:
+        db.execute(self._NEW_DEVICE + " ON CONFLICT DO NOTHING", (device, site, t, t, t))
+
+    def _touch_device(self, db: Database, device: str, site: str, at: float) -> None:
+        """Create the device or note that it was heard from (site may have changed)."""
+        db.execute(self._NEW_DEVICE + " ON CONFLICT (device) DO UPDATE SET site = excluded.site,"
+                   " last_seen = CASE WHEN excluded.last_seen > devices.last_seen"
+                   " THEN excluded.last_seen ELSE devices.last_seen END",
+                   (device, site, at, at, at))
+
+    def _advance(self, db: Database, device: str, epoch: str, upto: int) -> int:
+        """Highest contiguous seq from ``upto`` over received seqs and announced gaps."""
+        gaps = db.query("SELECT first_seq, last_seq FROM gaps WHERE device = ? AND epoch = ?"
+                        " AND last_seq > ? ORDER BY first_seq", (device, epoch, upto))
+        while True:
+            moved = False
+            for first, last in gaps:
+                if first <= upto + 1 <= last:
+                    upto, moved = int(last), True
+            rows = db.query("SELECT seq FROM received WHERE device = ? AND epoch = ? AND seq > ?"
+                            " ORDER BY seq LIMIT 1000", (device, epoch, upto))
+            for (seq,) in rows:
+                if seq != upto + 1:
+                    break
+                upto, moved = int(seq), True
+            if not moved:
+                return upto
+
+    def _apply(self, db: Database, kind: str, device: str, site: str, epoch: str, seq: int,
+               msg: Mapping[str, Any], at: float) -> None:
+        ref = f"{device}/{epoch}/{seq}"
+        if kind == "aggregate":
+            db.execute("INSERT INTO aggregates (device, epoch, seq, site, kind, t_utc, duration_s,"
+                       " payload, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)"
+                       " ON CONFLICT DO NOTHING",
+                       (device, epoch, seq, site, _opt_str(msg, "kind"),
+                        _opt_float(msg, "t", "t_utc"), _opt_float(msg, "duration_s"),
+                        to_json(msg), at))
+            self._enqueue(db, kind, device, site, ref, msg, at)
+        elif kind == "summary":
+            if self.keep_trend:
+                db.execute("INSERT INTO trend (device, epoch, seq, site, t_utc, payload,"
+                           " received_at) VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
+                           (device, epoch, seq, site, _opt_float(msg, "t0", "t_utc", "t"),
+                            to_json(msg), at))
+            self._enqueue(db, kind, device, site, ref, msg, at)
+        elif kind == "gap":
+            first, last = _int(msg, "first_seq"), _int(msg, "last_seq")
+            if first > last:
+                raise BadMessage(f"first_seq {first} > last_seq {last}")
+            count = None if msg.get("count") is None else _int(msg, "count")
+            db.execute("INSERT INTO gaps (device, epoch, seq, site, lane, first_seq, last_seq,"
+                       " count, reason, payload, received_at)"
+                       " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
+                       (device, epoch, seq, site, _opt_str(msg, "lane"), first, last, count,
+                        _opt_str(msg, "reason"), to_json(msg), at))
+            self._enqueue(db, kind, device, site, ref, msg, at)
+        elif kind == "status":
+            self._apply_status(db, device, site, msg, at)
+            self._enqueue(db, kind, device, site, ref, msg, at)
+        elif kind == "event":
+            if self._apply_event(db, device, site, epoch, seq, msg, at):
+                self._enqueue(db, kind, device, site, str(msg["event_id"]), msg, at)
+        elif kind == "capture":
+            self._apply_chunk(db, device, site, msg, at)
+
+    # --- events ---------------------------------------------------------------------------
+
+    def _apply_event(self, db: Database, device: str, site: str, epoch: str, seq: int,
+                     msg: Mapping[str, Any], at: float) -> bool:
+        """Insert or monotonically update an event; True when the stored row changed.
+
+        Order: closed beats open; within the same state, a higher seq of the same epoch
+        is newer. A closed event is never reopened; an older version never overwrites.
+        """
+        event_id = _opt_str(msg, "event_id")
+        if not event_id:
+            raise BadMessage("event_id missing")
+        state = _CHANGE_STATE.get(msg["change"]) if "change" in msg else msg.get("state")
+        if state not in EVENT_STATES:
+            raise BadMessage("change must be started or ended (or state open or closed), got "
+                             f"{msg.get('change', msg.get('state'))!r}")
+        channels = msg.get("channels", [])
+        thresholds = msg.get("thresholds") or {}
+        classification = msg.get("classification") or {}
+        if not isinstance(channels, list | tuple):
+            raise BadMessage("channels must be a list")
+        if not isinstance(thresholds, Mapping) or not isinstance(classification, Mapping):
+            raise BadMessage("thresholds and classification must be maps")
+        start = _opt_float(msg, "start_utc")
+        end = _opt_float(msg, "end_utc")
+        duration = _opt_float(msg, "duration_s", "duration")
+        if duration is None and start is not None and end is not None:
+            duration = end - start
+        cv = _opt_str(msg, "classifier_version")
+        values = (device, site, epoch, seq, _opt_str(msg, "kind"), state, to_json(channels),
+                  start, end, duration, _opt_float(msg, "level_v"), _opt_float(msg, "level_pu"),
+                  to_json(thresholds), to_json(classification),
+                  cv, to_json(msg))
+        row = db.query_one("SELECT device, epoch, seq, state FROM events WHERE event_id = ?"
+                           + self._lock_suffix, (event_id,))
+        if row is None:
+            cur = db.execute(
+                "INSERT INTO events (device, site, epoch, seq, kind, state, channels, start_utc,"
+                " end_utc, duration_s, level_v, level_pu, thresholds, classification,"
+                " classifier_version, payload, event_id, first_received, updated_at)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+                " ON CONFLICT DO NOTHING", (*values, event_id, at, at))
+            if cur.rowcount == 1:
+                return True
+            row = db.query_one("SELECT device, epoch, seq, state FROM events WHERE event_id = ?"
+                               + self._lock_suffix, (event_id,))
+            assert row is not None
+        old_device, old_epoch, old_seq, old_state = row
+        if old_device != device:
+            raise BadMessage(f"event_id {event_id} already belongs to device {old_device}")
+        rank, old_rank = EVENT_STATES.index(state), EVENT_STATES.index(old_state)
+        newer = rank > old_rank or (rank == old_rank and epoch == old_epoch and seq > old_seq)
+        if not newer:
+            return False
+        db.execute(
+            "UPDATE events SET device = ?, site = ?, epoch = ?, seq = ?, kind = ?, state = ?,"
+            " channels = ?, start_utc = ?, end_utc = ?, duration_s = ?, level_v = ?,"
+            " level_pu = ?, thresholds = ?, classification = ?, classifier_version = ?,"
+            " payload = ?, updated_at = ? WHERE event_id = ?", (*values, at, event_id))
+        return True
+
+    # --- captures -------------------------------------------------------------------------
+
+    def _apply_chunk(self, db: Database, device: str, site: str, msg: Mapping[str, Any],
+                     at: float) -> None:
+        capture_id = _opt_str(msg, "capture_id")
+        if not capture_id:
+            raise BadMessage("capture_id missing")
+        index, total = _int(msg, "index"), _int(msg, "total")
+        if not 0 <= index < total:
+            raise BadMessage(f"chunk index {index} outside 0..{total - 1}")
+        sha = _opt_str(msg, "sha256")
+        if sha is None or len(sha) != 64 or any(c not in "0123456789abcdef" for c in sha.lower()):
+            raise BadMessage("sha256 must be 64 hex digits")
+        sha = sha.lower()
+        data = msg.get("data")
+        if not isinstance(data, bytes | bytearray | memoryview):
+            raise BadMessage("chunk data must be bytes")
+        if db.query_one("SELECT 1 FROM captures WHERE capture_id = ?", (capture_id,)):
+            return  # already complete: a late duplicate chunk of a stored capture
+        event_id = _opt_str(msg, "event_id")
+        # Fields every chunk repeats (trigger, size, meta): they must agree across chunks.
+        fields = to_json({k: v for k, v in msg.items()
+                          if k not in ENVELOPE_KEYS and k not in CHUNK_KEYS})
+        other = db.query_one("SELECT total, sha256, meta, event_id FROM capture_chunks"
+                             " WHERE capture_id = ? LIMIT 1", (capture_id,))
+        if other is not None and (int(other[0]), other[1], other[2], other[3]) != (
+                total, sha, fields, event_id):
+            raise BadMessage(f"chunk {index} disagrees with the staged chunks of {capture_id} "
+                             "on total, sha256, event_id or metadata")
+        db.execute("INSERT INTO capture_chunks (capture_id, idx, total, sha256, event_id, device,"
+                   " site, data, meta, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+                   " ON CONFLICT DO NOTHING",
+                   (capture_id, index, total, sha, event_id, device, site, bytes(data),
+                    fields, at))
+        row = db.query_one("SELECT COUNT(*) FROM capture_chunks WHERE capture_id = ?",
+                           (capture_id,))
+        if row is not None and int(row[0]) == total:
+            self._complete_capture(db, capture_id, at)
+
+    def _complete_capture(self, db: Database, capture_id: str, at: float) -> None:
+        rows = db.query("SELECT idx, total, sha256, event_id, device, site, data, meta"
+                        " FROM capture_chunks WHERE capture_id = ? ORDER BY idx", (capture_id,))
+        payload = b"".join(db.blob(r[6]) for r in rows)
+        _, total, sha, event_id, device, site = rows[0][:6]
+        meta: dict[str, Any] = from_json(rows[0][7]) or {}
+        actual = hashlib.sha256(payload).hexdigest()
+        size = meta.get("size")
+        db.execute("DELETE FROM capture_chunks WHERE capture_id = ?", (capture_id,))
+        problem = None
+        if actual != sha:
+            problem = f"sha256 of {total} chunks is {actual}, announced {sha}"
+        elif isinstance(size, int) and size != len(payload):
+            problem = f"{len(payload)} bytes reassembled, announced size {size}"
+        if problem is not None:
+            # Keep the assembled bytes: the reason says what went wrong, nothing is dropped.
+            self._insert_dead_letter(db, f"capture/{capture_id}", payload,
+                                     f"capture {capture_id}: {problem}", device, site, at)
+            return
+        name = f"{sha}.bin"
+        path = self.captures_dir / name
+        if not (path.exists() and hashlib.sha256(path.read_bytes()).hexdigest() == sha):
+            write_file_durably(self.captures_dir, name, payload)
+        # The file is durable before the row (and so the ack) commits.
+        db.execute("INSERT INTO captures (capture_id, event_id, device, site, sha256, size,"
+                   " file_name, meta, completed_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)"
+                   " ON CONFLICT DO NOTHING",
+                   (capture_id, event_id, device, site, sha, len(payload), name, to_json(meta), at))
+        export = {"site": site, "device": device, "capture_id": capture_id,
+                  "event_id": event_id, "sha256": sha, "size": len(payload), "file_name": name,
+                  **meta}
+        self._enqueue(db, "capture", device, site, capture_id, export, at)
+
+    # --- devices --------------------------------------------------------------------------
+
+    def _apply_status(self, db: Database, device: str, site: str, msg: Mapping[str, Any],
+                      at: float) -> None:
+        source = msg.get("site_model") if isinstance(msg.get("site_model"), Mapping) else msg
+        assert isinstance(source, Mapping)
+        fields = {k: source[k] for k in SITE_MODEL_KEYS if k in source}
+        if "channel_names" not in fields and isinstance(source.get("channels"), list):
+            fields["channel_names"] = source["channels"]
+        if fields:
+            self._merge_model(db, device, fields)
+        report = {k: msg[k] for k in STATUS_KEYS if k in msg}
+        if report:
+            db.execute("UPDATE devices SET status = ? WHERE device = ?", (to_json(report), device))
+        # A heartbeat proves the device is up. The collector's receive time orders presence
+        # changes: a will message carries the time its connection was made, not when it fired.
+        state = {"heartbeat": "online"}.get(str(msg.get("state")), msg.get("state"))
+        if state in ("online", "offline"):
+            self._set_state(db, device, site, str(state), at)
+
+    def update_device_model(self, device: str, site: str, fields: Mapping[str, Any]) -> None:
+        """Merge site-model fields (``nominal_v``, ``nominal_hz``, ``service_type``,
+        ``channel_names``, ...; see :class:`agent.site.Site`) into the device's record."""
+        unknown = set(fields) - set(SITE_MODEL_KEYS)
+        if unknown:
+            raise ValueError(f"unknown site model field(s): {', '.join(sorted(unknown))}")
+
+        def work(db: Database) -> None:
+            now = time.time()
+            self._ensure_device(db, device, site, now)
+            self._merge_model(db, device, dict(fields))
+
+        self.db.run_in_transaction(work)
+
+    def _merge_model(self, db: Database, device: str, fields: dict[str, Any]) -> None:
+        row = db.query_one("SELECT model FROM devices WHERE device = ?" + self._lock_suffix,
+                           (device,))
+        model = (from_json(row[0]) if row else None) or {}
+        model.update(fields)
+        db.execute("UPDATE devices SET model = ? WHERE device = ?", (to_json(model), device))
+
+    def set_device_status(self, device: str, site: str, state: str, t: float) -> None:
+        """Record a presence change (e.g. from a retained presence or last-will message).
+
+        ``t`` [s UTC] is when the state began; an older report than the stored one is ignored,
+        so out-of-order presence messages cannot flip the state back.
+        """
+        if state not in DEVICE_STATES:
+            raise ValueError(f"device state must be one of {DEVICE_STATES}, got {state!r}")
+        self.db.run_in_transaction(lambda db: self._set_state(db, device, site, state, t))
+
+    def mark_silent_offline(self, now: float, silence_s: float) -> list[str]:
+        """Mark devices not heard from for ``silence_s`` [s] as offline (since they were last
+        heard), e.g. when a will message was lost; returns their ids."""
+        def work(db: Database) -> list[str]:
+            rows = db.query("SELECT device, site, last_seen FROM devices WHERE state <> 'offline'"
+                            " AND last_seen < ? ORDER BY device", (now - silence_s,))
+            for device, site, last_seen in rows:
+                self._set_state(db, device, site, "offline", float(last_seen))
+            return [r[0] for r in rows]
+
+        return self.db.run_in_transaction(work)
+
+    def _set_state(self, db: Database, device: str, site: str, state: str, t: float) -> None:
+        self._ensure_device(db, device, site, t)
+        db.execute("UPDATE devices SET state = ?, state_since = ? WHERE device = ?"
+                   " AND state <> ? AND state_since <= ?", (state, t, device, state, t))
+
+    # --- dead letters ---------------------------------------------------------------------
+
+    def dead_letter(self, topic: str, raw: bytes, reason: str, *, device: str | None = None,
+                    site: str | None = None, received_at: float | None = None) -> int:
+        """Store an undecodable or invalid message with its raw bytes; returns its id."""
+        at = received_at if received_at is not None else time.time()
+        return self.db.run_in_transaction(
+            lambda db: self._insert_dead_letter(db, topic, raw, reason, device, site, at))
+
+    def _dead_letter_item(self, db: Database, item: Item, reason: str, at: float,
+                          device: str | None = None, site: str | None = None) -> None:
+        raw = item.raw
+        if raw is None:  # no bytes as received: keep the decoded message as JSON (or repr)
+            try:
+                raw = to_json(dict(item.message) if isinstance(item.message, Mapping)
+                              else item.message).encode()
+            except (TypeError, ValueError):
+                raw = repr(item.message).encode()
+        if device is None and isinstance(item.message, Mapping):
+            d, s = item.message.get("device"), item.message.get("site")
+            device = d if valid_id(d) else None
+            site = s if valid_id(s) else None
+        self._insert_dead_letter(db, item.topic, raw, reason, device, site, at)
+
+    def _insert_dead_letter(self, db: Database, topic: str, raw: bytes, reason: str,
+                            device: str | None, site: str | None, at: float) -> int:
+        row = db.query_one("INSERT INTO dead_letters (topic, raw, reason, device, site,"
+                           " received_at) VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
+                           (_safe_text(topic), bytes(raw), _safe_text(reason), device, site, at))
+        assert row is not None
+        return int(row[0])
+
+    # --- export queue ---------------------------------------------------------------------
+
+    def _enqueue(self, db: Database, kind: str, device: str, site: str, ref: str,
+                 payload: Mapping[str, Any], at: float) -> None:
+        """One export row: ``kind`` = message type, ``payload`` = the message (for a capture:
+        its metadata, not the samples). Bytes are stored as ``{"$base64": ...}``."""
+        body = {k: v for k, v in payload.items() if k != "data"}
+        db.execute("INSERT INTO export_queue (kind, device, site, ref, payload, created_at)"
+                   " VALUES (?, ?, ?, ?, ?, ?)", (kind, device, site, ref, to_json(body), at))
+
+    def claim_exports(self, limit: int = 500, *, lease_s: float = 60.0) -> list[ExportRow]:
+        """Claim up to ``limit`` unclaimed (or lease-expired) export rows, lowest id first.
+
+        Rows stay in the queue until :meth:`complete_exports`; a claim that is neither
+        completed nor released becomes claimable again after ``lease_s`` [s].
+        """
+        now = time.time()
+        token = uuid.uuid4().hex
+        skip = " FOR UPDATE SKIP LOCKED" if self.db.dialect == "postgresql" else ""
+
+        def claim(db: Database) -> list[tuple[Any, ...]]:
+            return db.query(
+                "UPDATE export_queue SET claimed_until = ?, claim_token = ? WHERE id IN ("
+                "SELECT id FROM export_queue WHERE claimed_until IS NULL OR claimed_until < ?"
+                " ORDER BY id LIMIT ?" + skip + ")"
+                " RETURNING id, kind, payload",
+                (now + lease_s, token, now, int(limit)))
+
+        rows = sorted(self.db.run_in_transaction(claim), key=lambda r: int(r[0]))
+        return [ExportRow(int(r[0]), r[1], from_json(r[2])) for r in rows]
+
+    def complete_exports(self, ids: Sequence[int]) -> None:
+        """Remove exported rows (ids no longer queued are ignored)."""
+        self._by_ids("DELETE FROM export_queue WHERE id IN ({ids})", ids)
+
+    def reject_exports(self, ids: Sequence[int], reason: str) -> None:
+        """Move rows that can never be exported to the dead letters (payload JSON as the raw
+        bytes, ``export/<kind>`` as the topic) and off the queue, in one transaction."""
+        wanted = sorted({int(i) for i in ids})
+
+        def work(db: Database) -> None:
+            for row_id in wanted:
+                row = db.query_one("SELECT kind, device, site, payload, created_at FROM"
+                                   " export_queue WHERE id = ?" + self._lock_suffix, (row_id,))
+                if row is None:
+                    continue
+                self._insert_dead_letter(db, f"export/{row[0]}", str(row[3]).encode(),
+                                         f"export row {row_id}: {reason}", row[1], row[2],
+                                         time.time())
+                db.execute("DELETE FROM export_queue WHERE id = ?", (row_id,))
+
+        self.db.run_in_transaction(work)
+
+    def release_exports(self, ids: Sequence[int]) -> None:
+        """Give claimed rows back (export failed) so the next claim retries them."""
+        self._by_ids("UPDATE export_queue SET claimed_until = NULL, claim_token = NULL"
+                            " WHERE id IN ({ids})", ids)
+
+    def _by_ids(self, template: str, ids: Sequence[int]) -> int:
+        ids = [int(i) for i in ids]
+        if not ids:
+            return 0
+
+        def work(db: Database) -> int:
+            n = 0
+            for start in range(0, len(ids), 500):
+                part = ids[start:start + 500]
+                sql = template.replace("{ids}", ", ".join("?" * len(part)))
+                n += db.execute(sql, part).rowcount
+            return n
+
+        return self.db.run_in_transaction(work)
+
+    def export_backlog(self) -> int:
+        row = self.db.query_one("SELECT COUNT(*) FROM export_queue")
+        return int(row[0]) if row else 0
+
+    # --- retention ------------------------------------------------------------------------
+
+    def prune_received(self, before_utc: float) -> int:
+        """Forget idempotency rows received before ``before_utc`` [s UTC] whose seq is at or
+        below their stream's ``committed_upto`` (redeliveries of those are still recognised
+        by seq <= committed_upto); returns the number of rows removed."""
+        return self.db.run_in_transaction(lambda db: db.execute(
+            "DELETE FROM received WHERE received_at < ? AND seq <= (SELECT s.committed_upto"
+            " FROM streams s WHERE s.device = received.device AND s.epoch = received.epoch)",
+            (before_utc,)).rowcount)
+
+    def prune_trend(self, before_utc: float) -> int:
+        """Delete per-second trend rows older than ``before_utc`` [s UTC]; returns the count.
+
+        Only trend rows are pruned: they have been queued for export when they arrived, and
+        the 10-min aggregates keep the long-term record.
+        """
+        return self.db.run_in_transaction(
+            lambda db: db.execute("DELETE FROM trend WHERE t_utc < ?", (before_utc,)).rowcount)
+
+    # --- queries --------------------------------------------------------------------------
+
+    def committed_upto(self, device: str, epoch: str) -> int | None:
+        row = self.db.query_one("SELECT committed_upto FROM streams WHERE device = ? AND epoch = ?",
+                                (device, epoch))
+        return int(row[0]) if row else None
+
+    def streams(self) -> dict[tuple[str, str], int]:
+        return {(d, e): int(c) for d, e, c in
+                self.db.query("SELECT device, epoch, committed_upto FROM streams")}
+
+    def devices(self) -> list[dict[str, Any]]:
+        rows = self.db.query("SELECT device, site, model, status, first_seen, last_seen, state,"
+                             " state_since FROM devices ORDER BY device")
+        return [{"device": r[0], "site": r[1], "model": from_json(r[2]) or {},
+                 "status": from_json(r[3]) or {}, "first_seen": r[4], "last_seen": r[5],
+                 "state": r[6], "state_since": r[7]} for r in rows]
+
+    def events(self, device: str | None = None, *, site: str | None = None,
+               start_from: float | None = None, start_before: float | None = None
+               ) -> list[dict[str, Any]]:
+        """Stored events, oldest start first, each with the ids of its complete captures;
+        optionally of one device or site and with ``start_from <= start_utc < start_before``
+        [s UTC]."""
+        conds: list[str] = []
+        params: list[Any] = []
+        for cond, value in (("device = ?", device), ("site = ?", site),
+                            ("start_utc >= ?", start_from), ("start_utc < ?", start_before)):
+            if value is not None:
+                conds.append(cond)
+                params.append(value)
+        where = ("WHERE " + " AND ".join(conds)) if conds else ""
+        rows = self.db.query(
+            "SELECT event_id, device, site, epoch, seq, kind, state, channels, start_utc,"
+            " end_utc, duration_s, level_v, level_pu, thresholds, classification,"
+            " classifier_version, payload, first_received, updated_at FROM events "
+            + where + " ORDER BY start_utc, event_id", tuple(params))
+        caps: dict[str, list[str]] = {}
+        for cid, eid in self.db.query("SELECT capture_id, event_id FROM captures"
+                                      " ORDER BY capture_id"):
+            caps.setdefault(eid, []).append(cid)
+        keys = ("event_id", "device", "site", "epoch", "seq", "kind", "state", "channels",
+                "start_utc", "end_utc", "duration_s", "level_v", "level_pu", "thresholds",
+                "classification", "classifier_version", "payload", "first_received",
+                "updated_at")
+        out = []
+        for r in rows:
+            ev = dict(zip(keys, r, strict=True))
+            for k in ("channels", "thresholds", "classification", "payload"):
+                ev[k] = from_json(ev[k])
+            ev["captures"] = caps.get(ev["event_id"], [])
+            out.append(ev)
+        return out
+
+    def captures(self, event_id: str | None = None) -> list[dict[str, Any]]:
+        """Complete captures (of one event, or all); ``fields`` holds what every chunk message
+        repeats besides the chunk itself (for halfcycle captures: ``trigger``, ``size`` and
+        the codec ``meta``); ``path`` is the payload file ``<captures_dir>/<sha256>.bin``."""
+        if event_id is None:
+            return self._capture_rows("", ())
+        return self._capture_rows("WHERE event_id = ?", (event_id,))
+
+    def capture_info(self, capture_id: str) -> dict[str, Any]:
+        """One complete capture as in :meth:`captures`; StoreError if not stored."""
+        found = self._capture_rows("WHERE capture_id = ?", (capture_id,))
+        if not found:
+            raise StoreError(f"capture {capture_id} is not stored (or not complete)")
+        return found[0]
+
+    def _capture_rows(self, where: str, params: tuple[Any, ...]) -> list[dict[str, Any]]:
+        rows = self.db.query("SELECT capture_id, event_id, device, site, sha256, size,"
+                             " file_name, meta, completed_at FROM captures " + where
+                             + " ORDER BY capture_id", params)
+        return [{"capture_id": r[0], "event_id": r[1], "device": r[2], "site": r[3],
+                 "sha256": r[4], "size": int(r[5]), "path": self.captures_dir / r[6],
+                 "fields": from_json(r[7]) or {}, "completed_at": r[8]} for r in rows]
+
+    def capture_payload(self, capture_id: str) -> tuple[bytes, dict[str, Any]]:
+        """The reassembled bytes of a complete capture (checked against its sha256) and the
+        ``fields`` of its chunk messages (see :meth:`captures`)."""
+        cap = self.capture_info(capture_id)
+        data = Path(cap["path"]).read_bytes()
+        if hashlib.sha256(data).hexdigest() != cap["sha256"]:
+            raise StoreError(f"capture file {cap['path']} does not match its sha256")
+        return data, cap["fields"]
+
+    def capture(self, capture_id: str) -> Capture:
+        """A stored capture decoded with the wire codec (counts, scale, times, channels)."""
+        from agent.wire.codec import CaptureAssembler
+        from agent.wire.errors import WireError
+
+        cap = self.capture_info(capture_id)
+        data, fields = self.capture_payload(capture_id)
+        # The whole payload as one chunk: the codec's own decoder checks size and digest.
+        whole = {**fields, "type": "capture", "capture_id": capture_id,
+                 "event_id": cap["event_id"], "index": 0, "total": 1, "sha256": cap["sha256"],
+                 "data": data}
+        try:
+            decoded = CaptureAssembler().add(whole)
+        except (WireError, KeyError, TypeError, ValueError) as exc:
+            raise StoreError(f"capture {capture_id} cannot be decoded: {exc}") from exc
+        assert decoded is not None
+        return decoded
+
+    def pending_chunks(self) -> dict[str, tuple[int, int]]:
+        """Staged incomplete captures: capture_id → (chunks present, total)."""
+        return {cid: (int(n), int(t)) for cid, n, t in self.db.query(
+            "SELECT capture_id, COUNT(*), MAX(total) FROM capture_chunks GROUP BY capture_id")}
+
+    def gaps(self, device: str | None = None) -> list[dict[str, Any]]:
+        where, params = ("WHERE device = ?", (device,)) if device else ("", ())
+        rows = self.db.query("SELECT device, epoch, seq, site, lane, first_seq, last_seq, count,"
+                             " reason, received_at FROM gaps " + where
+                             + " ORDER BY device, epoch, first_seq", params)
+        keys = ("device", "epoch", "seq", "site", "lane", "first_seq", "last_seq", "count",
+                "reason", "received_at")
+        return [dict(zip(keys, r, strict=True)) for r in rows]
+
+    def dead_letters(self) -> list[dict[str, Any]]:
+        rows = self.db.query("SELECT id, topic, raw, reason, device, site, received_at"
+                             " FROM dead_letters ORDER BY id")
+        return [{"id": int(r[0]), "topic": r[1], "raw": self.db.blob(r[2]), "reason": r[3],
+                 "device": r[4], "site": r[5], "received_at": r[6]} for r in rows]
+
+    def aggregates(self, device: str | None = None) -> list[dict[str, Any]]:
+        return self._rows("aggregates", device)
+
+    def trend(self, device: str | None = None) -> list[dict[str, Any]]:
+        return self._rows("trend", device)
+
+    def _rows(self, table: str, device: str | None) -> list[dict[str, Any]]:
+        where, params = ("WHERE device = ?", (device,)) if device else ("", ())
+        rows = self.db.query(f"SELECT device, epoch, seq, site, t_utc, payload FROM {table} "
+                             + where + " ORDER BY device, t_utc, epoch, seq", params)
+        return [{"device": r[0], "epoch": r[1], "seq": int(r[2]), "site": r[3], "t_utc": r[4],
+                 "payload": from_json(r[5])} for r in rows]
+
+    def count(self, table: str) -> int:
+        """Row count of one store table (for tests and reports)."""
+        if table not in _TABLES:
+            raise ValueError(f"unknown table {table!r}")
+        row = self.db.query_one(f"SELECT COUNT(*) FROM {table}")
+        return int(row[0]) if row else 0
+
+
+_TABLES = ("devices", "streams", "received", "aggregates", "trend", "events", "captures",
+           "capture_chunks", "gaps", "dead_letters", "export_queue", "schema_version")
+
+__all__ = ["BadMessage", "ExportRow", "Item", "RecorderStore", "StoreError", "envelope",
+           "from_json", "to_json", "write_file_durably"]

@@ -1,0 +1,82 @@
+"""SARFI indices (IEEE 1564-2014) on a hand-worked invented example."""
+
+from __future__ import annotations
+
+import pytest
+
+from agent.collect.correlate import EventRecord, aggregate_temporal, sarfi
+
+T0 = 1764600000.0  # invented
+
+
+def ev(device: str, kind: str, level: float, duration: float | None,
+       start: float = T0) -> EventRecord:
+    return EventRecord(device=device, site="pilot", start_utc=start,
+                       end_utc=None if duration is None else start + duration, kind=kind,
+                       level_pu=level)
+
+
+# Worked by hand. 10 homes monitored (N_T = 10). Events (one home each, Nᵢ = 1):
+#   h1 dip 0.85 pu 0.1 s   h2 dip 0.65 pu 0.3 s   h3 dip 0.45 pu 0.1 s
+#   h4 interruption 0.02 pu 2 s   h1 swell 1.15 pu 1 s   h5 swell 1.25 pu 0.1 s
+# SARFI-X (IEEE 1564-2014: Σ Nᵢ / N_T, below X % for X < 100, above X % for X > 100):
+#   X=90: 0.85, 0.65, 0.45, 0.02 → 4/10    X=80: 0.65, 0.45, 0.02 → 3/10
+#   X=70: 0.65, 0.45, 0.02 → 3/10          X=50: 0.45, 0.02 → 2/10
+#   X=10: 0.02 → 1/10                      X=110: 1.15, 1.25 → 2/10
+#   X=120: 1.25 → 1/10                     X=140: none → 0
+# SARFI-ITIC (ITIC 2000; lower 70 % for 20 ms-0.5 s, 80 % for 0.5-10 s; upper 120 % to
+#   0.5 s, then 110 %): h1 dip 0.85@0.1 s inside; h2 0.65@0.3 s < 70 % out; h3 0.45@0.1 s
+#   out; h4 0.02@2 s < 80 % out; h1 swell 1.15@1 s > 110 % out; h5 1.25@0.1 s > 120 % out
+#   → 5 events, 5/10.
+# SARFI-SEMI (SEMI F47: 50 % to 0.2 s, 70 % to 0.5 s, 80 % to 1 s; sags only): h1 inside;
+#   h2 0.65@0.3 s < 70 % out; h3 0.45@0.1 s < 50 % out; h4 lasts 2 s, beyond F47 → not
+#   counted; swells not in F47 → 2 events, 2/10.
+WORKED = [ev("h1", "dip", 0.85, 0.1), ev("h2", "dip", 0.65, 0.3), ev("h3", "dip", 0.45, 0.1),
+          ev("h4", "interruption", 0.02, 2.0), ev("h1", "swell", 1.15, 1.0),
+          ev("h5", "swell", 1.25, 0.1)]
+
+
+def test_worked_example() -> None:
+    result = sarfi(WORKED, homes_monitored=10)
+    assert result.counts == {140: 0, 120: 1, 110: 2, 90: 4, 80: 3, 70: 3, 50: 2, 10: 1}
+    assert result.index == pytest.approx({140: 0.0, 120: 0.1, 110: 0.2, 90: 0.4, 80: 0.3,
+                                          70: 0.3, 50: 0.2, 10: 0.1})
+    assert (result.itic_count, result.itic) == (5, 0.5)
+    assert (result.semi_count, result.semi) == (2, 0.2)
+    assert result.skipped_open == 0
+
+
+def test_on_the_curve_counts_as_inside() -> None:
+    # ITIC 2000: exactly 70 % for 0.3 s lies on the lower boundary (no-interruption region),
+    # 50 % for 0.2 s is below it; SEMI F47: 70 % for 0.3 s and 50 % for 0.2 s are both on
+    # the ride-through curve (inside). Start near 0 s so 0.2 s stays 0.2 s in float64.
+    result = sarfi([ev("a", "dip", 0.70, 0.3, start=1000.0),
+                    ev("b", "dip", 0.50, 0.2, start=1000.0)], homes_monitored=2)
+    assert result.itic_count == 1  # b only
+    assert result.semi_count == 0
+    # SARFI-70 counts strictly below 70 %: 0.70 is not, 0.50 is (IEEE 1564 "below X %")
+    assert result.counts[70] == 1
+
+
+def test_reclosing_counts_once_after_temporal_aggregation() -> None:
+    shots = [ev("a", "dip", 0.55, 0.2, T0), ev("a", "dip", 0.30, 0.2, T0 + 15),
+             ev("a", "dip", 0.60, 0.2, T0 + 38)]
+    raw = sarfi(shots, homes_monitored=4)
+    aggregated = sarfi([a.representative for a in aggregate_temporal(shots)],
+                       homes_monitored=4)
+    assert raw.counts[90] == 3 and aggregated.counts[90] == 1  # IEEE 1564 aggregation
+    assert aggregated.index[50] == 0.25  # the representative is the 0.30 pu shot
+
+
+def test_open_events_are_skipped_and_reported() -> None:
+    result = sarfi([ev("a", "dip", 0.5, None), ev("b", "dip", 0.5, 0.1)], homes_monitored=2)
+    assert result.skipped_open == 1 and result.counts[90] == 1
+
+
+def test_bad_inputs() -> None:
+    with pytest.raises(ValueError, match="positive integer"):
+        sarfi(WORKED, homes_monitored=0)
+    with pytest.raises(ValueError, match="only 3"):
+        sarfi(WORKED, homes_monitored=3)  # 5 homes have events
+    with pytest.raises(ValueError, match="not 100"):
+        sarfi(WORKED, homes_monitored=10, thresholds=(100,))
