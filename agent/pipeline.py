@@ -140,10 +140,10 @@ class TakeCaptures:
                 utc = ev.start_utc if update.utc is None else update.utc
                 self.recorder.trigger(ev.event_id, "start", index, utc)
             elif ev.end is not None and ev.ended_by == "recovery":
-                index = ev.end if update.index is None else update.index
-                utc = update.utc if update.utc is not None else ev.end_utc
-                assert utc is not None
-                self.recorder.trigger(ev.event_id, "end", index, utc)
+                end_index = ev.end if update.index is None else update.index
+                end_utc = update.utc if update.utc is not None else ev.end_utc
+                assert end_utc is not None
+                self.recorder.trigger(ev.event_id, "end", end_index, end_utc)
         if frame.final:
             frame.captures.extend(self.recorder.flush())
         return frame

@@ -183,26 +183,51 @@ def test_many_arrays_name_the_bad_array() -> None:
         unpack_units_many([pack_units(np.arange(2), None, 0), over], 2)
 
 
-def _summary_mutations() -> list[tuple[str, Any]]:
+def _const(units: int, exp: int, n: int = 60) -> list[object]:
+    return pack_units(np.full(n, units), None, exp)
+
+
+def _spike(masked: bool) -> list[object]:
+    """2000.00 V everywhere but 3000.00 V at second 30, which the mask may mark missing."""
+    units = np.full(60, 200_000)
+    units[30] = 300_000
+    packed = pack_units(units, None, -2)
+    if masked:
+        missing = np.zeros(60, dtype=bool)
+        missing[30] = True
+        packed.append(np.packbits(missing, bitorder="little").tobytes())
+    return packed
+
+
+def _summary_mutations() -> list[tuple[str, Any, bool]]:
+    """(path, new value, valid?) with the x-range bounds of summary.schema.json and half a
+    unit of quantisation slack (so 2000.00 V passes, 2000.01 V does not)."""
     return [
-        ("rms_mean.0.1", 250_000),          # 2500 V: outside x-range 0..2000 V
-        ("rms_mean.0.1", 199_999),          # 1999.99 V: inside
-        ("rms_mean.0.1", 200_000),          # 2000.00 V: the bound itself is inside
-        ("rms_min.1.1", -1),                # -0.01 V: more than half a unit below 0
-        ("hz.1", 100_001),                  # 100.001 Hz > 100 Hz + half a unit
-        ("thd.0.0", -5),                    # exp -5 on thd: allowed by the schema
-        ("flags.0", -2),                    # flags must use exp 0
-        ("flags.1", 65_536),                # above 16 bits
-        ("imbalance.1", INT32_MAX),         # int32 first, then deltas push past it
-        ("imbalance.2", 33),                # width changes: length no longer matches
-        ("rms_max.1.3", b""),               # too short
-        ("n", 59),                          # arrays hold 60
-        ("thd.1", None),                    # a null channel: allowed
+        ("rms_mean.0", _const(200_000, -2), True),     # 2000.00 V: the bound itself
+        ("rms_mean.0", _const(200_001, -2), False),    # 2000.01 V
+        ("rms_min.1", _const(0, -2), True),            # 0 V
+        ("rms_min.1", _const(-1, -2), False),          # -0.01 V
+        ("hz", _const(100_000, -3), True),             # 100.000 Hz
+        ("hz", _const(100_001, -3), False),            # 100.001 Hz
+        ("flags", _const(65_535, 0), True),            # all 16 flag bits
+        ("flags", _const(65_536, 0), False),           # a 17th bit
+        ("flags", _const(1, -1), False),               # flags must use exp 0
+        ("thd.1", _const(100_000, -4), True),          # THD 10 (fraction): the bound
+        ("thd.1", _const(100_001, -4), False),
+        ("rms_max.0", _spike(masked=True), True),      # out-of-range value marked missing
+        ("rms_max.0", _spike(masked=False), False),
+        ("imbalance", [0, INT32_MAX] + _const(0, -4)[2:], True),  # int32 edge, constant
+        ("imbalance", [0, INT32_MAX, 2, bytes(15)], False),  # width 2: wrong length
+        ("rms_max.1.3", b"", False),                   # deltas too short
+        ("n", 59, False),                              # arrays hold 60
+        ("thd.1", None, True),                         # a null channel
+        ("thd", [None, None], True),
     ]
 
 
-@pytest.mark.parametrize("path,value", _summary_mutations())
-def test_vectorised_summary_check_agrees_with_array_by_array(path: str, value: Any) -> None:
+@pytest.mark.parametrize("path,value,valid", _summary_mutations())
+def test_vectorised_summary_check_agrees_with_array_by_array(path: str, value: Any,
+                                                             valid: bool) -> None:
     msg = copy.deepcopy(sample_messages()["summary"])
     node: Any = msg
     parts = [int(p) if p.isdigit() else p for p in path.split(".")]
@@ -218,6 +243,7 @@ def test_vectorised_summary_check_agrees_with_array_by_array(path: str, value: A
         except WireError as exc:
             outcomes.append(exc.code)
     assert outcomes[0] == outcomes[1], outcomes
+    assert (outcomes[1] is None) == valid, outcomes
     # Through decode: the error (if any) is the array-by-array one, naming the array.
     raw = msgpack.packb(msg, use_bin_type=True)
     if outcomes[1] is None:

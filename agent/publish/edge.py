@@ -343,8 +343,8 @@ def run_edge(
     """Run the agent until the source ends, ``stop`` is set, or ``max_seconds`` of signal.
 
     ``pace`` sleeps so that replayed and simulated sources run at ``speed`` times real time
-    (a live source paces itself). On the way out the pipeline is flushed into the outbox and the publisher
-    gets ``drain_timeout_s`` to deliver what is still unacknowledged.
+    (a live source paces itself). On the way out the pipeline is flushed into the outbox and
+    the publisher gets ``drain_timeout_s`` to deliver what is still unacknowledged.
     """
     stop = stop or threading.Event()
     mqtt_config = PublisherConfig.from_section(settings.mqtt)

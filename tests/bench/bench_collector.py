@@ -29,18 +29,20 @@ import paho.mqtt.client as mqtt
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from _mqtt_helpers import make_broker  # noqa: E402
+from _mqtt_helpers import make_broker
 
-from agent.collect.service import Collector, CollectorSettings, Received  # noqa: E402
-from agent.publish.mqtt import PublisherConfig  # noqa: E402
-from agent.store.recorder import RecorderStore  # noqa: E402
-from agent.wire import codec  # noqa: E402
-from agent.wire.records import SummaryBatcher  # noqa: E402
+from agent.collect.service import Collector, CollectorSettings, Received
+from agent.publish.mqtt import PublisherConfig
+from agent.store.recorder import RecorderStore
+from agent.wire import codec
+from agent.wire.records import SummaryBatcher
 
 SITE = "bench-street"
 
 
-def make_stream(devices: list[str], n: int, records: int, epoch: str) -> list[tuple[str, bytes, int]]:
+def make_stream(
+    devices: list[str], n: int, records: int, epoch: str
+) -> list[tuple[str, bytes, int]]:
     """(topic, payload, device index) in publish order; invented values."""
     rng = np.random.default_rng(1)
     out: list[tuple[str, bytes, int]] = []
