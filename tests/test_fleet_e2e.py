@@ -11,10 +11,13 @@ from __future__ import annotations
 import threading
 from pathlib import Path
 
+import comtrade
+import numpy as np
 import pytest
 from _mqtt_helpers import make_broker
 from _tsdb_helpers import VictoriaMetrics, sample_count, victoria_metrics
 
+from agent.cli.main import main
 from agent.collect.service import Collector, load_collector_settings
 from agent.publish.edge import EdgeResult, run_edge
 from agent.settings import load_edge_settings
@@ -197,5 +200,21 @@ def test_fleet_events_reach_the_store_classified(fleet) -> None:
         tagged = {(x["metric"]["device"], x["metric"]["category"]) for x in series}
         assert ("home-3", "momentary_swell") in tagged
         assert {d for d, _ in tagged} == set(DEVICES)
+        # COMTRADE export of the swell's end capture, read back by the independent `comtrade`
+        # package (IEEE C37.111-1999): same samples in volts, rate and channel name.
+        swell_caps = [c for c in store.captures(swell["event_id"])
+                      if c["fields"]["trigger"] == "end"]
+        assert len(swell_caps) == 1
+        cap = store.capture(swell_caps[0]["capture_id"])
     finally:
         store.close()
+    out = collector_cfg.parent / "comtrade"
+    assert main(["capture", "export", "--store", settings.store_url, "--captures",
+                 str(settings.captures_dir), "--id", cap.capture_id, "--out", str(out)]) == 0
+    rec = comtrade.Comtrade()
+    rec.load(str(out / f"{cap.capture_id}.cfg"), str(out / f"{cap.capture_id}.dat"))
+    assert rec.analog_channel_ids == ["L1"]
+    assert rec.cfg.sample_rates[0][0] == pytest.approx(3840.0)
+    assert rec.frequency == 50.0  # from the device's site model, sent with its online status
+    volts = np.asarray(rec.analog[0])
+    assert np.allclose(volts, cap.counts[:, 0] * cap.scale[0], rtol=1e-6, atol=1e-3)

@@ -463,7 +463,9 @@ class DemoRun:
                 doc = json.loads(journal.read_text(encoding="utf-8"))
             except (OSError, ValueError):
                 return False
-            return "interruption" in json.dumps(doc.get("open", doc))
+            opened = doc.get("open") if isinstance(doc, dict) else None
+            return isinstance(opened, list) and any(
+                isinstance(e, dict) and e.get("kind") == "interruption" for e in opened)
 
         start_wall = go + role["at"] * self.seconds / self.speed
         if not _wait(interruption_open, max(5.0, signal_end - time.monotonic() + 5.0), 0.01):
@@ -628,6 +630,17 @@ def _home_main(argv: list[str]) -> int:
     stop = threading.Event()
     install_signal_handlers(stop)
     if args.wait:
+        # Warm up what run_edge does before it stamps the timebase, so every home starts
+        # its clock within a few milliseconds of the others after "go".
+        from agent.acquisition.open_source import open_source
+        from agent.publish.mqtt import PublisherConfig
+
+        PublisherConfig.from_section(settings.mqtt)
+        source = open_source(settings.source)
+        try:
+            next(iter(source.blocks()), None)
+        finally:
+            source.close()
         print("ready", flush=True)
         if sys.stdin.readline().strip() != "go":
             return 3
