@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-pytestmark = pytest.mark.skipif(
+needs_mosquitto = pytest.mark.skipif(
     shutil.which("mosquitto") is None and not Path("/usr/sbin/mosquitto").exists(),
     reason="needs Debian's mosquitto package")
 
@@ -33,6 +33,7 @@ def _processes_mentioning(text: str) -> list[str]:
     return found
 
 
+@needs_mosquitto
 def test_demo_four_homes(tmp_path: Path) -> None:
     run_dir = tmp_path / "demo"
     done = subprocess.run(
@@ -89,3 +90,26 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     # Planned stops at the end of the demo are not reported as units gone offline.
     assert not any("offline" in r for r in attention.values())
     assert report["store"]["dead_letters"] == 0
+
+
+def test_demo_without_mosquitto_says_what_to_install(
+        monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
+    from agent.cli import demo
+    from agent.cli.main import main
+
+    monkeypatch.setattr(demo, "mosquitto_available", lambda: False)
+    assert main(["demo", "--homes", "2"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "mosquitto" in err[0] and "apt-get install mosquitto" in err[0]
+
+
+def test_demo_refuses_bad_options(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    from agent.cli.main import main
+
+    assert main(["demo", "--homes", "1"]) == 2
+    assert "--homes 1" in capsys.readouterr().err
+    (tmp_path / "used").mkdir()
+    (tmp_path / "used" / "x").write_text("keep me")
+    assert main(["demo", "--dir", str(tmp_path / "used")]) == 2
+    assert "new or empty" in capsys.readouterr().err
+    assert (tmp_path / "used" / "x").read_text() == "keep me"  # nothing touched

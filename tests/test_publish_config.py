@@ -39,6 +39,7 @@ def test_from_section_reads_values_and_password_file(tmp_path: Path) -> None:
     ({"bogus": 1}, "mqtt.bogus"),
     ({"password_file": "/nonexistent/pw"}, "mqtt.password_file"),
     ({"ack_timeout_s": -1.0}, "mqtt.ack_timeout_s"),
+    ({"ca_file": "/nonexistent/ca.crt"}, "mqtt.ca_file"),
 ])
 def test_from_section_errors_name_the_key(table: dict[str, object], key: str) -> None:
     with pytest.raises(ConfigError) as err:

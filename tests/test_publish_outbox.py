@@ -221,3 +221,11 @@ def test_gap_accounting_invariants(tmp_path_factory: pytest.TempPathFactory,
         acked = ob.stats().acked_seq
         for s in range(1, issued + 1):
             assert s in present or s <= acked or s in covered or s in delivered, s
+
+
+def test_foreign_file_is_a_clear_error_and_left_alone(tmp_path: Path) -> None:
+    path = tmp_path / "o.db"
+    path.write_bytes(b"this is not an SQLite database" * 100)
+    with pytest.raises(OutboxError, match="cannot use as an outbox"):
+        Outbox(path, "dev-a", SITE)
+    assert path.read_bytes().startswith(b"this is not")  # nothing overwritten

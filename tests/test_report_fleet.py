@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from _store_helpers import pg_database, store_url
 
 from agent.cli.main import main
 from agent.events.classify import classify_event
@@ -26,6 +27,7 @@ from agent.wire.records import SummaryBatcher
 SITE = "invented-lane"
 T0 = 1_780_000_000.0  # an invented afternoon (whole second)
 HOMES = ("h1", "h2", "h3", "h4", "h5")
+__all__ = ["pg_database", "store_url"]  # fixtures: every store test runs on SQLite and PostgreSQL
 
 
 class Home:
@@ -68,8 +70,8 @@ class Home:
 
 
 @pytest.fixture
-def store(tmp_path: Path) -> Any:
-    s = RecorderStore(f"sqlite:///{tmp_path / 'recorder.db'}", tmp_path / "captures")
+def store(store_url: str, tmp_path: Path) -> Any:
+    s = RecorderStore(store_url, tmp_path / "captures")
     homes = {d: Home(d) for d in HOMES}
     # A feeder-wide sag to 0.60 pu for 0.2 s reaches h1-h4 within 20 ms of each other.
     for i, d in enumerate(HOMES[:4]):
@@ -184,14 +186,14 @@ def test_compliance_and_overvoltage_from_trend(store: RecorderStore) -> None:
     assert dev["h1"]["nominal_source"] == "declared" and dev["h5"]["nominal_v"] is None
 
 
-def test_text_sections_and_cli(store: RecorderStore, tmp_path: Path,
+def test_text_sections_and_cli(store: RecorderStore, store_url: str,
                                capsys: pytest.CaptureFixture[str]) -> None:
     text = render_text(fleet_report(store, now=T0 + 400.0))
     for title in ("Events seen by many homes at once", "Overvoltage and swells",
                   "Units out of range, offline or without power", "SARFI"):
         assert title in text
     assert "4/5" in text and "h1, h2, h3, h4" in text
-    url = f"sqlite:///{tmp_path / 'recorder.db'}"
+    url = store_url
     assert main(["report", "--store", url, "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
     assert got["fleet_events"][0]["homes"] == 4 and got["homes_monitored"] == 5
@@ -211,3 +213,46 @@ def test_cli_refuses_missing_or_foreign_store(tmp_path: Path,
     assert main(["report", "--store", f"sqlite:///{foreign}"]) == 2
     assert "not a halfcycle recorder store" in capsys.readouterr().err
     assert main(["report", "--store", "mysql://x"]) == 2
+
+
+def test_period_filter(store: RecorderStore) -> None:
+    # Only the window around the h2 swell (+90 s .. +150 s): one home event, no fleet event.
+    r = fleet_report(store, now=T0 + 400.0, start_utc=T0 + 90.0, end_utc=T0 + 150.0)
+    assert r["fleet_events"] == []
+    assert r["store"]["events"] == 1 and r["sarfi"]["counts"]["SARFI-110"] == 1
+    # h5 was last heard at T0-500 s: not monitored during this period, so N_T = 4.
+    assert r["homes_monitored"] == 4 and r["sarfi"]["index"]["SARFI-110"] == pytest.approx(0.25)
+    with pytest.raises(ValueError, match="not before"):
+        fleet_report(store, start_utc=T0, end_utc=T0)
+
+
+def test_empty_store_and_unreadable_rows(tmp_path: Path) -> None:
+    with RecorderStore(f"sqlite:///{tmp_path / 'empty.db'}", tmp_path / "c") as empty:
+        r = fleet_report(empty)
+        assert r["homes_monitored"] == 0 and r["fleet_events"] == []
+        assert "none: no event started" in render_text(r)
+        # A trend row the report cannot decode is counted and named, not silently dropped.
+        home = Home("h9")
+        home.trend(np.full(5, 120.0), np.zeros(5), T0)
+        empty.commit_batch(home.messages)
+        empty.db.run_in_transaction(lambda db: db.execute(
+            "UPDATE trend SET payload = ? WHERE device = 'h9'", ('{"n": "bad"}',)))
+        r = fleet_report(empty, default_nominal_v=120.0)
+        assert r["devices"][0]["trend_rows_unreadable"] == 1
+        assert "NOT USED: unreadable per-second rows {'h9': 1}" in render_text(r)
+
+
+def test_cli_period_options(store: RecorderStore, store_url: str,
+                            capsys: pytest.CaptureFixture[str]) -> None:
+    from agent.cli.report import parse_when
+
+    assert parse_when("2h", "--since", 10_000.0) == 10_000.0 - 7200.0
+    assert parse_when("2026-06-01T00:00Z", "--since", 0.0) == 1_780_272_000.0
+    url = store_url
+    assert main(["report", "--store", url, "--since", "yesterday"]) == 2
+    assert "ISO 8601" in capsys.readouterr().err
+    assert main(["report", "--store", url, "--since", "1d", "--until", "2d"]) == 2
+    # T0 is in May 2026: a report of June 2026 has no events.
+    assert main(["report", "--store", url, "--json", "--since", "2026-06-01T00:00Z",
+                 "--until", "2026-07-01T00:00Z"]) == 0
+    assert json.loads(capsys.readouterr().out)["store"]["events"] == 0

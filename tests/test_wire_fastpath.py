@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import copy
 import math
+from functools import partial
 from typing import Any
 
 import msgpack
@@ -216,8 +217,8 @@ def _summary_mutations() -> list[tuple[str, Any, bool]]:
         ("thd.1", _const(100_001, -4), False),
         ("rms_max.0", _spike(masked=True), True),      # out-of-range value marked missing
         ("rms_max.0", _spike(masked=False), False),
-        ("imbalance", [0, INT32_MAX] + _const(0, -4)[2:], True),  # int32 edge, constant
-        ("imbalance", [0, INT32_MAX, 2, bytes(15)], False),  # width 2: wrong length
+        ("imbalance", [-4, INT32_MAX, *_const(0, -4)[2:]], False),  # 214748.3647: outside 0..2
+        ("imbalance", [-4, 0, 2, bytes(14)], False),   # 59 deltas x 2 bits need 15 bytes
         ("rms_max.1.3", b"", False),                   # deltas too short
         ("n", 59, False),                              # arrays hold 60
         ("thd.1", None, True),                         # a null channel
@@ -235,15 +236,17 @@ def test_vectorised_summary_check_agrees_with_array_by_array(path: str, value: A
         node = node[p]
     node[parts[-1]] = value
     schema = default_validator().schemas["summary"]
-    outcomes = []
-    for check in (_semantic_summary_fast, _semantic_summary_slow):
+    outcomes: list[str | None] = []
+    checks: list[Any] = [partial(_semantic_summary_fast, shortcut=True),
+                         partial(_semantic_summary_fast, shortcut=False), _semantic_summary_slow]
+    for check in checks:
         try:
             check(msg, schema)
             outcomes.append(None)
         except WireError as exc:
             outcomes.append(exc.code)
-    assert outcomes[0] == outcomes[1], outcomes
-    assert (outcomes[1] is None) == valid, outcomes
+    assert outcomes[0] == outcomes[1] == outcomes[2], outcomes
+    assert (outcomes[2] is None) == valid, outcomes
     # Through decode: the error (if any) is the array-by-array one, naming the array.
     raw = msgpack.packb(msg, use_bin_type=True)
     if outcomes[1] is None:
@@ -273,16 +276,15 @@ def test_random_byte_flips_in_summaries_agree(seed: int, data: st.DataObject) ->
     else:
         packed[2] = data.draw(st.integers(0, 33))
     schema = default_validator().schemas["summary"]
-    fast_ok = slow_ok = True
-    try:
-        _semantic_summary_fast(msg, schema)
-    except WireError:
-        fast_ok = False
-    try:
-        _semantic_summary_slow(msg, schema)
-    except WireError:
-        slow_ok = False
-    assert fast_ok == slow_ok
+    outcomes = []
+    for check in (partial(_semantic_summary_fast, shortcut=True),
+                  partial(_semantic_summary_fast, shortcut=False), _semantic_summary_slow):
+        try:
+            check(msg, schema)
+            outcomes.append(True)
+        except WireError:
+            outcomes.append(False)
+    assert outcomes[0] == outcomes[1] == outcomes[2], outcomes
 
 
 def test_encoded_summaries_still_round_trip_through_decode() -> None:

@@ -15,6 +15,7 @@ stamped from the same moment and the feeder-wide sag lands at the same UTC time 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import math
 import os
@@ -276,6 +277,9 @@ class DemoRun:
     def _stop_all(self) -> None:
         """SIGTERM every process still running (homes, victoria-metrics, broker), then kill."""
         for proc in reversed(self.procs):
+            if proc.stdin is not None and not proc.stdin.closed:
+                with contextlib.suppress(OSError):
+                    proc.stdin.close()  # a home still waiting for "go" gives up at once
             if proc.poll() is None:
                 proc.send_signal(signal.SIGTERM)
         for proc in reversed(self.procs):
@@ -455,31 +459,42 @@ class DemoRun:
                     password: str) -> None:
         """SIGKILL the agent while its interruption is open, then restart it (power back)."""
         journal = self.root / "homes" / h.device / "state" / "open-events.json"
-        role = role_of(self.street, index)
         signal_end = go + self.seconds / self.speed
 
-        def interruption_open() -> bool:
+        def open_interruption() -> tuple[float, float] | None:
+            """(start UTC, last-alive UTC) of the open interruption in the journal."""
             try:
                 doc = json.loads(journal.read_text(encoding="utf-8"))
-            except (OSError, ValueError):
-                return False
-            opened = doc.get("open") if isinstance(doc, dict) else None
-            return isinstance(opened, list) and any(
-                isinstance(e, dict) and e.get("kind") == "interruption" for e in opened)
+                for e in doc.get("open") or []:
+                    if e.get("kind") == "interruption":
+                        alive = (doc.get("last_alive") or {}).get("utc", e["start_utc"])
+                        return float(e["start_utc"]), float(alive)
+            except (OSError, ValueError, TypeError, KeyError, AttributeError):
+                pass
+            return None
 
-        start_wall = go + role["at"] * self.seconds / self.speed
-        if not _wait(interruption_open, max(5.0, signal_end - time.monotonic() + 5.0), 0.01):
+        if not _wait(lambda: open_interruption() is not None,
+                     max(5.0, signal_end - time.monotonic() + 5.0), 0.01):
             self.notes.append(f"{h.device}: the interruption never opened; not killed")
             h.result = self._finish(h, 60.0)
             return
-        # Give the journal a chance to stamp "last alive" (it does so about once a second of
-        # wall time), but kill well before the recording ends.
-        seen = journal.stat().st_mtime_ns
-        latest = start_wall + 0.8 * (signal_end - start_wall)
-        _wait(lambda: journal.stat().st_mtime_ns != seen, max(0.0, latest - time.monotonic()),
-              0.01)
+        # Let the journal stamp "last alive" once more (about once a second of wall time), so
+        # the lost event keeps a duration, but kill before the recording would end.
+        def stamped() -> bool:
+            got = open_interruption()
+            return got is not None and got[1] > got[0]
+
+        # The agent stamps its last sample with the moment its recording ends, so that moment
+        # is the interruption's start UTC plus the rest of the recording.
+        found = open_interruption()
+        assert found is not None
+        ends_at = found[0] + self.seconds * (1.0 - role_of(self.street, index)["at"])
+        _wait(stamped, max(0.0, min(ends_at - time.time(), signal_end + 2.0 - time.monotonic())
+                           - 0.15), 0.01)
         h.proc.send_signal(signal.SIGKILL)
         h.proc.wait(10)
+        # Keep the journal as the dead monitor left it (the restart rewrites it).
+        shutil.copyfile(journal, self.root / "logs" / f"{h.device}-journal-at-power-loss.json")
         self.timings["power_lost_after_s"] = time.monotonic() - go
         self.say(f"{h.device}: monitor lost power (agent SIGKILLed during the interruption)")
         time.sleep(0.5)  # the supply is off for a moment
@@ -590,7 +605,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     say(INVENTED_BANNER)
     from agent import logs
 
-    logs.configure("warning")  # the collector thread logs here; keep the terminal readable
+    logs.configure("error")  # the collector thread logs here; keep the terminal readable
     try:
         report = DemoRun(root, args.homes, args.seconds, args.speed, say).run()
     finally:

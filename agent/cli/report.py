@@ -6,6 +6,8 @@ import argparse
 import json
 import math
 import sys
+import time
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -30,8 +32,37 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="captures folder (default: 'captures' beside an SQLite store)")
     p.add_argument("--nominal", type=float, default=None,
                    help="nominal voltage [V] for homes whose store records none")
+    p.add_argument("--since", default=None,
+                   help="period start: ISO 8601 UTC time (2026-06-01T00:00Z) or an age such "
+                   "as 7d, 24h, 30m (default: everything stored)")
+    p.add_argument("--until", default=None,
+                   help="period end (exclusive), same forms (default: no end)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=cmd_report)
+
+
+_UNITS = {"s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
+
+
+def parse_when(text: str, option: str, now: float) -> float:
+    """``--since``/``--until``: an ISO 8601 time (UTC unless it says otherwise) or an age
+    (``7d``, ``24h``, ``30m``, ``90s``, ``2w``) before ``now``; returns UTC seconds."""
+    t = text.strip()
+    if len(t) >= 2 and t[-1].lower() in _UNITS:
+        try:
+            amount = float(t[:-1])
+        except ValueError:
+            amount = math.nan
+        if math.isfinite(amount) and amount >= 0:
+            return now - amount * _UNITS[t[-1].lower()]
+    try:
+        when = datetime.fromisoformat(t.replace("Z", "+00:00").replace("z", "+00:00"))
+    except ValueError:
+        raise UserError(f"{option} {text!r}: use an ISO 8601 UTC time such as "
+                        "2026-06-01T00:00Z or an age such as 7d, 24h, 30m") from None
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=UTC)
+    return when.timestamp()
 
 
 def open_store(url: str, captures: str | None) -> RecorderStore:
@@ -74,9 +105,15 @@ def _json_safe(value: Any) -> Any:
 def cmd_report(args: argparse.Namespace) -> int:
     if args.nominal is not None and not 50.0 <= args.nominal <= 1000.0:
         raise UserError(f"--nominal {args.nominal}: must be 50..1000 V")
+    now = time.time()
+    since = parse_when(args.since, "--since", now) if args.since else None
+    until = parse_when(args.until, "--until", now) if args.until else None
+    if since is not None and until is not None and not since < until:
+        raise UserError(f"--since {args.since} is not before --until {args.until}")
     store = open_store(args.store, args.captures)
     try:
-        report = fleet_report(store, default_nominal_v=args.nominal)
+        report = fleet_report(store, now=now, default_nominal_v=args.nominal,
+                              start_utc=since, end_utc=until)
     except StoreError as exc:
         raise UserError(f"--store {args.store}: {exc}") from None
     finally:

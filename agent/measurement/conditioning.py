@@ -170,3 +170,35 @@ class BoxcarCascade:
         for i, length in enumerate(self.lengths):
             y, self._tails[i] = moving_sum(y, length, self._tails[i])
         return y * self._norm
+
+
+class IntegerBoxcarCascade:
+    """Streaming cascade of causal moving *sums* over integer samples, in exact int64.
+
+    The output is the boxcar cascade of :class:`BoxcarCascade` times ``prod(lengths)``, with
+    no rounding at all, so it cannot depend on how the samples were split into blocks.
+    """
+
+    def __init__(self, lengths: tuple[int, ...], channels: int) -> None:
+        self.lengths = lengths
+        self.delay = group_delay(lengths)
+        self.settle = int(sum(length - 1 for length in lengths))  # startup transient [samples]
+        self.norm = 1.0 / float(np.prod(lengths))
+        """Factor from the sums to the moving averages [1/samples]."""
+        self._tails: list[npt.NDArray[np.int64]] = [
+            np.zeros((length - 1, channels), np.int64) for length in lengths]
+
+    def process(self, x: npt.NDArray[np.integer]) -> npt.NDArray[np.int64]:
+        """Moving sums [count · samples^k] of ``x`` (n, channels), continuing the last call."""
+        y: npt.NDArray[np.integer] = x
+        for i, length in enumerate(self.lengths):
+            # z = [0, tail, y] accumulated: row j + length - z row j is the sum of `length` rows.
+            z = np.empty((y.shape[0] + length, y.shape[1]), np.int64)
+            z[0] = 0
+            z[1:length] = self._tails[i]
+            z[length:] = y
+            tail = z[z.shape[0] - (length - 1):].copy()
+            np.cumsum(z[1:], axis=0, out=z[1:])
+            y = z[length:] - z[:-length]
+            self._tails[i] = tail
+        return np.asarray(y, dtype=np.int64)

@@ -25,22 +25,20 @@ from agent.acquisition.timebase import Timebase
 from agent.events.types import Thresholds
 from agent.measurement.aggregate import rms_aggregate
 from agent.measurement.conditioning import (
-    BoxcarCascade,
+    IntegerBoxcarCascade,
     boxcar_gain,
     boxcar_lengths,
-    grouped_dc_estimate,
 )
 from agent.measurement.frequency import whole_cycles
 from agent.measurement.harmonics import (
-    harmonic_subgroups,
     max_harmonic_order,
     resample_points,
     thd_from_subgroups,
-    window_spectra,
+    window_subgroups,
 )
 from agent.measurement.imbalance import negative_sequence_ratio, split_phase_imbalance
 from agent.measurement.quality import QualityMonitor
-from agent.measurement.rms import rms_without_dc, segment_integrals
+from agent.measurement.rms import rms_without_dc
 from agent.measurement.types import (
     Aggregate,
     BasicIntervals,
@@ -52,6 +50,8 @@ from agent.measurement.zerocross import MIN_SPACING, ChainState, extend_chain, h
 from agent.site import Site
 
 F64 = npt.NDArray[np.float64]
+F32 = npt.NDArray[np.float32]
+I64 = npt.NDArray[np.int64]
 BOOL = npt.NDArray[np.bool_]
 
 TEN_MIN_S = 600.0
@@ -136,6 +136,8 @@ class MeasurementEngine:
         self._order = max_harmonic_order(fs, f0)
         # Resample points: enough for a 10/12-cycle window down to 0.9 f0 without decimation.
         self._points = resample_points(math.ceil(self._cycles * fs / (0.9 * f0)))
+        self._frac = np.arange(self._points) / self._points
+        self._scale2 = self.scale * self.scale
         chunk = max(1, round(fs / f0))
         self._dc_removal = dc_removal
         # Unbalance needs the legs of one service: split-phase |V1-V2|/Vnom, three-phase u2.
@@ -158,9 +160,13 @@ class MeasurementEngine:
         self._f_utc: list[float] = []
         self._f_syn: list[bool] = []
         self._f_flag = False
-        self._buf: F64 = np.zeros((0, c))
-        self._energy: tuple[F64] | None = None
+        self._wave: F32 = np.zeros((c, 0), np.float32)
         self._reset_signal(0)
+
+    @property
+    def _buf(self) -> F32:
+        """The carried samples (n, channels) [V], float32 (all the harmonics need)."""
+        return self._wave.T
 
     # ------------------------------------------------------------------ public API
     def process(self, block: Block) -> MeasurementOutput:
@@ -204,10 +210,8 @@ class MeasurementEngine:
             return out.build(self.channels)
         self._next = start + n
         out.flags.extend(self._quality.update(counts, start))
-        y = counts * self.scale
-        self._buf = np.concatenate([self._buf, y], axis=0) if self._buf.shape[0] else y
-        self._energy = None
-        f = self._casc.process(y)
+        self._append_samples(counts)
+        f = self._casc.process(counts)
         head = self._settle_until - start
         if head > 0:
             f[: min(head, n)] = 0.0
@@ -231,18 +235,23 @@ class MeasurementEngine:
     # ------------------------------------------------------------------ signal chain
     def _reset_signal(self, anchor: int) -> None:
         c = self.channels
-        self._casc = BoxcarCascade(self._lengths, c)
+        self._casc = IntegerBoxcarCascade(self._lengths, c)
         self._delay = self._casc.delay
         self._settle_until = anchor + self._casc.settle
-        self._seg: list[F64] = [np.zeros(0) for _ in range(c)]
+        # The band in the cascade's units (sums of counts) per channel.
+        self._band_sums = [float(v) for v in self._band / (self.scale * self._casc.norm)]
+        self._seg: list[I64] = [np.zeros(0, np.int64) for _ in range(c)]
         self._seg_start = [float(anchor)] * c
         self._state = [0] * c
         self._cand: list[F64] = [np.zeros(0) for _ in range(c)]
         self._horizon = [-math.inf] * c
         self._chain = ChainState(last=None, anchor=anchor + self._delay)
-        self._buf = np.zeros((0, c))
+        self._wave = np.zeros((c, 0), np.float32)
+        # Running sums of counts and counts² [count, count²] before each carried row (int64,
+        # exact; they may wrap around, differences stay exact).
+        self._px: I64 = np.zeros((1, c), np.int64)
+        self._pq: I64 = np.zeros((1, c), np.int64)
         self._buf_start = anchor
-        self._energy = None
         self._cx_t = np.zeros(0)
         self._cx_syn = np.zeros(0, bool)
         self._cx_utc = np.zeros(0)
@@ -252,22 +261,54 @@ class MeasurementEngine:
         self._next_win = 0
         self._iv_start = 0
         self._cx_dc = np.zeros((0, c))
+        # Integrals of the samples' interpolant from the buffer origin to each crossing: an
+        # exact integer part (running sum at the crossing's floor) plus a fractional rest.
+        self._cx_px: I64 = np.zeros((0, c), np.int64)
+        self._cx_pq: I64 = np.zeros((0, c), np.int64)
+        self._cx_rx = np.zeros((0, c))
+        self._cx_rq = np.zeros((0, c))
         self._wmean_hist = np.zeros((0, c))
+        self._dc_cache: dict[int, F64] = {}
         self._quality.reset()
+
+    def _append_samples(self, counts: npt.NDArray[np.integer]) -> None:
+        """Carry the block: float32 volts for the harmonics, running sums for the RMS."""
+        n, c = counts.shape
+        wave = counts.T.astype(np.float64, order="C")
+        wave *= self.scale[:, None]
+        wave32 = wave.astype(np.float32)
+        x = counts.astype(np.int64)
+        px = np.empty((n + 1, c), np.int64)
+        pq = np.empty((n + 1, c), np.int64)
+        px[0] = self._px[-1]
+        pq[0] = self._pq[-1]
+        px[1:] = x
+        np.multiply(x, x, out=pq[1:])
+        np.cumsum(px, axis=0, out=px)
+        np.cumsum(pq, axis=0, out=pq)
+        if self._wave.shape[1]:
+            self._wave = np.concatenate([self._wave, wave32], axis=1)
+            self._px = np.concatenate([self._px, px[1:]])
+            self._pq = np.concatenate([self._pq, pq[1:]])
+        else:
+            self._wave, self._px, self._pq = wave32, px, pq
 
     def _measured_until(self) -> float:
         n = self._cx_t.shape[0]
         return float(self._cx_t[-1]) if n else float(self._buf_start)
 
-    def _detect(self, f: F64, start: int) -> None:
+    def _detect(self, f: I64, start: int) -> None:
         cap = int(4 * self._hp) + 2
         d = self._delay
         for c in range(self.channels):
-            seg = np.concatenate([self._seg[c], f[:, c]]) if self._seg[c].shape[0] else f[:, c]
-            s0 = self._seg_start[c] if self._seg[c].shape[0] else float(start)
-            t, last_out, state = hysteresis_crossings(seg, self._band, self._state[c])
+            old = self._seg[c]
+            seg = np.concatenate([old, f[:, c]]) if old.shape[0] else f[:, c]
+            s0 = self._seg_start[c] if old.shape[0] else float(start)
+            t, last_out, state = hysteresis_crossings(seg, self._band_sums[c], self._state[c])
             if t.shape[0]:
-                self._cand[c] = np.concatenate([self._cand[c], s0 + t - d])
+                t += s0 - d
+                cand = self._cand[c]
+                self._cand[c] = np.concatenate([cand, t]) if cand.shape[0] else t
             keep = max(last_out, 0, seg.shape[0] - cap)
             self._seg[c] = seg[keep:].copy()
             self._seg_start[c] = s0 + keep
@@ -278,8 +319,9 @@ class MeasurementEngine:
         new_t, new_syn = extend_chain(self._cand, self._horizon, self._chain, self._hp,
                                       3.0 * self._hp)
         if new_t.shape[0]:
-            tb = self.timebase
-            utc = np.array([tb.to_utc(float(v)) for v in new_t])
+            to_utc = self.timebase.to_utc
+            utc = np.array([to_utc(v) for v in new_t.tolist()])
+            px, rx, pq, rq = self._crossing_integrals(new_t)
             self._cx_t = np.concatenate([self._cx_t, new_t])
             self._cx_syn = np.concatenate([self._cx_syn, new_syn])
             self._cx_utc = np.concatenate([self._cx_utc, utc])
@@ -287,6 +329,10 @@ class MeasurementEngine:
                                            np.floor(utc / TEN_MIN_S).astype(np.int64)])
             self._cx_wflag = np.concatenate([self._cx_wflag, np.zeros(new_t.shape[0], bool)])
             self._cx_dc = np.concatenate([self._cx_dc, np.zeros((new_t.shape[0], self.channels))])
+            self._cx_px = np.concatenate([self._cx_px, px])
+            self._cx_rx = np.concatenate([self._cx_rx, rx])
+            self._cx_pq = np.concatenate([self._cx_pq, pq])
+            self._cx_rq = np.concatenate([self._cx_rq, rq])
             floor = float(self._chain.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
             for c in range(self.channels):
                 cand = self._cand[c]
@@ -296,49 +342,124 @@ class MeasurementEngine:
         self._emit_intervals(out, final)
         self._trim()
 
-    def _chain_integrals(self, t_abs: F64) -> tuple[F64, F64]:
-        """Integrals of x² [V² · samples] and x [V · samples] between consecutive crossings."""
-        if self._energy is None:
-            self._energy = (self._buf * self._buf,)
-        rel = t_abs - self._buf_start
-        return (segment_integrals(self._energy[0], rel), segment_integrals(self._buf, rel))
+    def _crossing_integrals(self, t_abs: F64) -> tuple[I64, F64, I64, F64]:
+        """Integrals of the piecewise-linear interpolant of the counts x and of x² from the
+        buffer origin to each crossing [count · samples, count² · samples], as an exact
+        integer part (sum over the rows before the crossing's floor) and a float rest.
+
+        The integral over [a, b] is (int_b - int_a) + (rest_b - rest_a): trapezoid rule
+        inside, linear interpolation at the fractional edges (as ``rms.segment_integrals``).
+        """
+        floor = np.floor(t_abs)
+        rel = floor.astype(np.intp)
+        rel -= self._buf_start
+        frac = (t_abs - floor)[:, None]
+        w1 = frac * frac
+        w1 *= 0.5                          # weight of (v1 - v0): integral of the slope
+        w0 = frac + 0.5                    # weight of v0 (its half-trapezoid included)
+        w0 -= w1
+        out: list[npt.NDArray[np.generic]] = []
+        for prefix in (self._px, self._pq):
+            p0 = prefix[rel]
+            v0 = prefix[rel + 1] - p0      # samples at the floor and the next row, exact
+            v1 = prefix[rel + 2] - prefix[rel + 1]
+            out += [p0, v0 * w0 + v1 * w1]
+        return out[0], out[1], out[2], out[3]  # type: ignore[return-value]
+
+    def _between(self, lo: npt.NDArray[np.intp] | slice, hi: npt.NDArray[np.intp] | slice
+                 ) -> tuple[F64, F64]:
+        """Integrals of x² [V² · samples] and x [V · samples] between crossing rows lo, hi."""
+        iq = (self._cx_pq[hi] - self._cx_pq[lo]).astype(np.float64)
+        iq += self._cx_rq[hi]
+        iq -= self._cx_rq[lo]
+        ix = (self._cx_px[hi] - self._cx_px[lo]).astype(np.float64)
+        ix += self._cx_rx[hi]
+        ix -= self._cx_rx[lo]
+        return iq * self._scale2, ix * self.scale
 
     def _emit_windows(self, out: _Out) -> None:
         base = self._cx_base
         k0, k1 = self._next_win, base + self._cx_t.shape[0] - 2
         if k1 <= k0:
             return
-        a = self._cx_t[k0 - base:k1 - base]
-        b = self._cx_t[k0 + 2 - base:k1 + 2 - base]
-        iq, ix = self._chain_integrals(self._cx_t[k0 - base:k1 + 2 - base])
+        lo, hi = k0 - base, k1 - base
+        a = self._cx_t[lo:hi]
+        b = self._cx_t[lo + 2:hi + 2]
+        iq, ix = self._between(slice(lo, hi), slice(lo + 2, hi + 2))
         span = (b - a)[:, None]
-        msq = (iq[:-1] + iq[1:]) / span
-        mean = (ix[:-1] + ix[1:]) / span
+        msq = iq / span
+        mean = ix / span
         if self._dc_removal:
-            allm = np.concatenate([self._wmean_hist, mean], axis=0)
-            first = k0 - self._wmean_hist.shape[0]
-            dc = grouped_dc_estimate(allm, first, 2 * self._cycles,
-                                     self._dc_history)[self._wmean_hist.shape[0]:]
-            self._wmean_hist = allm[-(self._dc_history + 2 * self._cycles):]
-            self._cx_dc[k0 - base:k1 - base] = dc
+            dc = self._window_dc(mean, k0)
+            self._cx_dc[lo:hi] = dc
             urms = rms_without_dc(msq, mean, dc)
         else:
             urms = np.sqrt(np.maximum(msq, 0.0))
         syn = self._cx_syn
-        synthetic = (syn[k0 - base:k1 - base] | syn[k0 + 1 - base:k1 + 1 - base]
-                     | syn[k0 + 2 - base:k1 + 2 - base])
+        synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
+        synthetic |= syn[lo + 2:hi + 2]
         flagged = np.any((urms < self._dip_v) | (urms > self._swell_v), axis=1)
-        self._cx_wflag[k0 - base:k1 - base] = flagged
+        self._cx_wflag[lo:hi] = flagged
         out.hc.append((a.copy(), b.copy(), urms, synthetic))
-        self._feed_freq(out, self._cx_utc[k0 - base:k1 - base], synthetic, flagged)
+        self._feed_freq(out, self._cx_utc[lo:hi], synthetic, flagged)
         self._next_win = k1
 
-    def _emit_intervals(self, out: _Out, final: bool) -> None:
-        base, total = self._cx_base, self._cx_base + self._cx_t.shape[0]
-        found: list[tuple[int, int]] = []
+    def _window_dc(self, mean: F64, k0: int) -> F64:
+        """DC estimate [V] for windows k0 .. k0 + len(mean) - 1, given their means [V].
+
+        Window k gets the median of the means of windows g - history .. g - 1, with
+        g = group * floor(k / group) (zero for g = 0): the values of
+        ``conditioning.grouped_dc_estimate``, each group's median computed once.
+        """
+        group, history = 2 * self._cycles, self._dc_history
+        hist = self._wmean_hist
+        allm = np.concatenate([hist, mean], axis=0) if hist.shape[0] else mean
+        first = k0 - hist.shape[0]                       # window index of allm[0]
+        k1 = k0 + mean.shape[0]
+        g_first = (k0 // group) * group
+        cache = self._dc_cache
+        todo = [g for g in range(max(g_first, history), k1, group) if g not in cache]
+        if todo:                    # the common case: full histories, one vectorised median
+            idx = np.array(todo)[:, None] - first + np.arange(-history, 0)[None, :]
+            srt = np.sort(allm[idx], axis=1)
+            est = 0.5 * (srt[:, (history - 1) // 2] + srt[:, history // 2])
+            for j, g in enumerate(todo):
+                cache[g] = est[j]
+        for g in range(g_first, min(history, k1), group):    # just after a start
+            if g not in cache:
+                cache[g] = (np.zeros(self.channels) if g == 0
+                            else np.median(allm[-first:g - first], axis=0))
+        groups = list(range(g_first, k1, group))
+        for g in [g for g in cache if g < g_first]:
+            del cache[g]
+        self._wmean_hist = allm[-(history + group):]
+        if len(groups) == 1:
+            return np.broadcast_to(cache[g_first], mean.shape).copy()
+        edges = np.clip(np.array(groups[1:]) - k0, 0, mean.shape[0])
+        reps = np.diff(edges, prepend=0, append=mean.shape[0])
+        return np.repeat(np.array([cache[g] for g in groups]), reps, axis=0)
+
+    def _find_intervals(self, final: bool) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
+        """Basic intervals that became complete: first crossing (global index) and cycles."""
+        base, n = self._cx_base, self._cx_t.shape[0]
+        total = base + n
         i0 = self._iv_start
+        step = 2 * self._cycles
+        if i0 - base < n and self._cx_p10[i0 - base] == self._cx_p10[n - 1]:
+            # No 10-min tick ahead: whole intervals of `cycles`, closed form.
+            k = max(0, (total - 1 - i0) // step if final else (total - 2 - i0) // step)
+            starts = list(range(i0, i0 + k * step, step))
+            cycles = [self._cycles] * k
+            i0 += k * step
+            if final and (total - 1 - i0) // 2 >= 1:
+                starts.append(i0)
+                cycles.append((total - 1 - i0) // 2)   # partial interval at end of data
+                i0 += 2 * cycles[-1]
+            self._iv_start = i0
+            return np.array(starts, np.intp), np.array(cycles, np.intp)
+        found: list[tuple[int, int]] = []
         while True:
-            if i0 - base >= self._cx_t.shape[0]:
+            if i0 - base >= n:
                 break
             p0 = self._cx_p10[i0 - base]
             close_m = 0
@@ -359,43 +480,47 @@ class MeasurementEngine:
             found.append((i0, close_m))
             i0 += 2 * close_m
         self._iv_start = i0
-        if not found:
+        return (np.array([f[0] for f in found], np.intp),
+                np.array([f[1] for f in found], np.intp))
+
+    def _emit_intervals(self, out: _Out, final: bool) -> None:
+        first, cyc = self._find_intervals(final)
+        if not first.shape[0]:
             return
-        i0s = np.array([f[0] for f in found]) - base
-        cyc = np.array([f[1] for f in found])
+        i0s = first - self._cx_base
         i1s = i0s + 2 * cyc
         s, e = self._cx_t[i0s], self._cx_t[i1s]
-        lo = int(i0s[0])
-        iq, ix = self._chain_integrals(self._cx_t[lo:int(i1s[-1]) + 1])
-        gq = np.concatenate([np.zeros((1, self.channels)), np.cumsum(iq, axis=0)])
-        gx = np.concatenate([np.zeros((1, self.channels)), np.cumsum(ix, axis=0)])
+        iq, ix = self._between(i0s, i1s)
         span = (e - s)[:, None]
-        msq = (gq[i1s - lo] - gq[i0s - lo]) / span
-        mean = (gx[i1s - lo] - gx[i0s - lo]) / span
+        msq = iq / span
+        mean = ix / span
         rms = rms_without_dc(msq, mean, self._cx_dc[i0s])
         thd = np.full(rms.shape, np.nan)
         imb = np.full(cyc.shape[0], np.nan)
         # Spectra in batches so a huge block (a whole file at once) keeps memory bounded.
         for b0 in range(0, cyc.shape[0], SPECTRA_BATCH):
             sl = slice(b0, b0 + SPECTRA_BATCH)
-            spec = window_spectra(self._buf, s[sl] - self._buf_start, e[sl] - self._buf_start,
-                                  self._points, np.float32)
+            ysg, fund = window_subgroups(self._wave, s[sl] - self._buf_start,
+                                         e[sl] - self._buf_start, cyc[sl],
+                                         max(self._order, 1), self._points, self._frac)
             if self._order >= 2:                # else the sample rate allows no harmonic
-                thd[sl] = thd_from_subgroups(harmonic_subgroups(spec, cyc[sl], self._order,
-                                                                e[sl] - s[sl]))
+                thd[sl] = thd_from_subgroups(ysg).T
             if self._imbalance == "u2":         # fundamental phasors, (m, 3)
-                imb[sl] = negative_sequence_ratio(spec[np.arange(spec.shape[0]), :, cyc[sl]])
+                imb[sl] = negative_sequence_ratio(fund.T)
         if self._imbalance == "split":
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)
         # Windows i0-1 .. i1-1 overlap the interval [crossing i0, crossing i1].
         wcs = np.concatenate([[0], np.cumsum(self._cx_wflag)])
         flagged = (wcs[i1s] - wcs[np.maximum(i0s - 1, 0)]) > 0
-        out.iv.append((s.copy(), e.copy(), rms, thd, imb, hz, flagged))
+        out.iv.append((s, e, rms, thd, imb, hz, flagged))
+        utc0 = self._cx_utc[i0s].tolist()
+        utc1 = self._cx_utc[i1s].tolist()
+        p10 = self._cx_p10[i0s].tolist()
+        flag_list = flagged.tolist()
         for k in range(cyc.shape[0]):
-            self._aggregate_interval(out, float(self._cx_utc[i0s[k]]),
-                                     float(self._cx_utc[i1s[k]]), int(self._cx_p10[i0s[k]]),
-                                     rms[k], thd[k], bool(flagged[k]))
+            self._aggregate_interval(out, utc0[k], utc1[k], p10[k], rms[k], thd[k],
+                                     flag_list[k])
 
     def _trim(self) -> None:
         base = self._cx_base
@@ -408,6 +533,10 @@ class MeasurementEngine:
             self._cx_p10 = self._cx_p10[drop:]
             self._cx_wflag = self._cx_wflag[drop:]
             self._cx_dc = self._cx_dc[drop:]
+            self._cx_px = self._cx_px[drop:]
+            self._cx_rx = self._cx_rx[drop:]
+            self._cx_pq = self._cx_pq[drop:]
+            self._cx_rq = self._cx_rq[drop:]
             self._cx_base = keep_cx
         if self._cx_t.shape[0]:
             need = min(self._iv_start, self._next_win) - self._cx_base
@@ -415,11 +544,12 @@ class MeasurementEngine:
             keep_sample = math.floor(first) - 2
         else:
             keep_sample = math.floor(self._chain.anchor) - 2
-        cut = min(keep_sample - self._buf_start, self._buf.shape[0])
+        cut = min(keep_sample - self._buf_start, self._wave.shape[1])
         if cut > 0:
-            self._buf = self._buf[cut:]
+            self._wave = self._wave[:, cut:]
+            self._px = self._px[cut:]
+            self._pq = self._pq[cut:]
             self._buf_start += cut
-            self._energy = None
 
     def _flush_signal(self, out: _Out) -> None:
         self._advance(out, final=True)

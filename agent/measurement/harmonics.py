@@ -36,22 +36,40 @@ def catmull_rom(x: F64, positions: F64, dtype: type[np.floating] = np.float64
     Positions must be >= 1 and leave two samples of margin on the right. ``dtype`` float32
     halves the cost at a relative rounding of about 1e-7.
     """
-    i = positions.astype(np.intp)                   # floor: positions are positive
-    f = (positions - i).astype(dtype)
+    return catmull_rom_rows(np.ascontiguousarray(x.T, dtype=dtype), positions)
+
+
+def catmull_rom_rows(rows: npt.NDArray[np.floating], positions: F64
+                     ) -> npt.NDArray[np.floating]:
+    """:func:`catmull_rom` of channel-major samples ``rows`` (channels, n), computed in
+    ``rows.dtype``; the result has shape (channels,) + positions.shape."""
+    dtype = rows.dtype.type
+    floor = np.floor(positions)
+    f = (positions - floor).astype(dtype)           # exact fraction, then rounded to dtype
+    first = floor.astype(np.intp)
+    first -= 1                                      # index of the left-most tap
     f2 = f * f
-    hf3 = 0.5 * f2 * f
-    w0 = f2 - hf3 - 0.5 * f                         # Catmull-Rom weights of the 4 taps
-    w1 = 3.0 * hf3 - 2.5 * f2 + 1.0
+    hf3 = f2 * f
+    hf3 *= 0.5
+    w0 = f2 - hf3                                   # Catmull-Rom weights of the 4 taps
+    w0 -= 0.5 * f
+    w1 = 3.0 * hf3
+    w1 -= 2.5 * f2
+    w1 += 1.0
     w3 = hf3 - 0.5 * f2
-    w2 = 1.0 - w0 - w1 - w3                         # the weights sum to one
-    xt = np.ascontiguousarray(x.T, dtype=dtype)
-    out = np.empty((xt.shape[0], *positions.shape), dtype=dtype)
-    for c in range(xt.shape[0]):
-        row, o = xt[c], out[c]
-        np.multiply(w0, row.take(i - 1), out=o)
-        o += w1 * row.take(i)
-        o += w2 * row.take(i + 1)
-        o += w3 * row.take(i + 2)
+    w2 = 1.0 - w0
+    w2 -= w1
+    w2 -= w3                                        # the weights sum to one
+    out = np.empty((rows.shape[0], *positions.shape), dtype=dtype)
+    tmp = np.empty(positions.shape, dtype=dtype)
+    n = rows.shape[1]
+    for c in range(rows.shape[0]):
+        row, o = rows[c], out[c]
+        # Shifted views read taps i-1 .. i+2 with one index array.
+        np.multiply(w0, row.take(first), out=o)
+        o += np.multiply(w1, row[1:n].take(first), out=tmp)
+        o += np.multiply(w2, row[2:n].take(first), out=tmp)
+        o += np.multiply(w3, row[3:n].take(first), out=tmp)
     return out
 
 
@@ -139,6 +157,59 @@ def harmonic_subgroups(spectra: C128, cycles: npt.ArrayLike, max_order: int,
         omega = 2.0 * np.pi * centre / np.asarray(span, dtype=np.float64)[:, None]
         ysg = ysg / catmull_rom_response_fast(omega)[:, None, :]
     return np.asarray(ysg)
+
+
+def window_subgroups(rows: npt.NDArray[np.floating], start: F64, end: F64,
+                     cycles: npt.ArrayLike, max_order: int, points: int,
+                     frac: F64 | None = None) -> tuple[F64, C128]:
+    """Harmonic subgroups and fundamental phasors of windows of channel-major samples.
+
+    The same values as ``harmonic_subgroups(window_spectra(rows.T, start, end, points,
+    rows.dtype), cycles, max_order, end - start)`` without building the scaled spectra: only
+    the 3 * ``max_order`` bins of the subgroups are picked from the transforms.
+
+    Parameters
+    ----------
+    rows : (channels, n)  [V], float32 or float64 (the interpolation precision)
+    start, end : (m,)  [sample index into rows]; each window is ``cycles`` whole cycles
+    cycles : (m,) int
+    max_order : highest harmonic order H (>= 1)
+    points : int, power of two
+    frac : ``np.arange(points) / points``, if the caller keeps it
+
+    Returns
+    -------
+    ysg : (channels, m, H)  [V peak], subgroups divided by the Catmull-Rom response
+    fundamental : (channels, m) complex  [V peak], the bin of the fundamental
+
+    References
+    ----------
+    IEC 61000-4-7 Ed.2 clause 5.6 (harmonic subgroup).
+    """
+    if frac is None:
+        frac = np.arange(points) / points
+    span = end - start
+    pos = start[:, None] + span[:, None] * frac[None, :]
+    seg = catmull_rom_rows(rows, pos).astype(np.float64, copy=False)  # (channels, m, points)
+    spec = np.fft.rfft(seg, axis=-1)
+    scale = 2.0 / points                    # a power of two: exact, so scaling may come last
+    cyc = np.asarray(cycles, dtype=np.intp)
+    centre = cyc[:, None] * np.arange(1, max_order + 1)[None, :]              # (m, H)
+    last = spec.shape[-1] - 1
+    m = cyc.shape[0]
+    if np.all(cyc == cyc[0]):
+        idx = np.minimum(centre[0][:, None] + np.array([-1, 0, 1]), last)       # (H, 3)
+        picked = spec[:, :, idx]                                          # (channels, m, H, 3)
+        fund = spec[:, :, min(int(cyc[0]), last)]
+    else:
+        idx = np.minimum(centre[:, :, None] + np.array([-1, 0, 1]), last)       # (m, H, 3)
+        picked = spec[:, np.arange(m)[:, None, None], idx]
+        fund = spec[:, np.arange(m), np.minimum(cyc, last)]
+    picked *= scale
+    ysg = np.sqrt(np.sum(picked.real**2 + picked.imag**2, axis=-1))      # (channels, m, H)
+    omega = 2.0 * np.pi * centre / span[:, None]
+    ysg /= catmull_rom_response_fast(omega)[None, :, :]
+    return np.asarray(ysg), np.asarray(fund * scale)
 
 
 def thd_from_subgroups(ysg: F64) -> F64:

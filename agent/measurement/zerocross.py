@@ -15,6 +15,7 @@ noise suppressed) and clause 5.4.2 (Urms(1/2) windows start at fundamental zero 
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -28,12 +29,13 @@ MIN_SPACING = 0.3      # of the nominal half-period: closer crossings are reject
 MAX_SPACING = 1.5      # of the nominal half-period: beyond this a synthetic crossing is inserted
 
 
-def hysteresis_crossings(y: F64, band: float, state0: int = 0) -> tuple[F64, int, int]:
+def hysteresis_crossings(y: npt.NDArray[np.floating] | npt.NDArray[np.integer], band: float,
+                         state0: int = 0) -> tuple[F64, int, int]:
     """Zero crossings of ``y`` that pass through the band ``[-band, +band]``.
 
     Parameters
     ----------
-    y : (n,)  [V], a low-passed signal
+    y : (n,)  [V], a low-passed signal (any real dtype: integer samples keep exact compares)
     band : [V], half-width of the hysteresis band
     state0 : sign (+1/-1/0) of the signal before y[0]
 
@@ -43,25 +45,37 @@ def hysteresis_crossings(y: F64, band: float, state0: int = 0) -> tuple[F64, int
     last_out : index of the last sample outside the band (-1 if none)
     state : sign of that sample (state0 if none)
     """
-    s = (y > band).astype(np.int8) - (y < -band).astype(np.int8)
-    nz = np.flatnonzero(s)
-    if nz.shape[0] == 0:
+    n = y.shape[0]
+    if np.issubdtype(y.dtype, np.integer):
+        band = math.floor(band)        # same decisions for integer y, without float casts
+    above = y > band
+    side = above.view(np.int8) - (y < -band).view(np.int8)     # +1 / 0 / -1 per sample
+    # Work on runs of equal side (a few per half cycle) instead of on every sample.
+    starts = np.flatnonzero(side[1:] != side[:-1])
+    starts += 1
+    run_side = np.concatenate([side[:1], side[starts]])
+    out_run = np.flatnonzero(run_side)
+    if out_run.shape[0] == 0:
         return np.zeros(0), -1, state0
-    sv = s[nz]
-    prev = np.concatenate([[state0], sv[:-1]])
-    change = (sv != prev) & (prev != 0)
-    ends = nz[change]                      # first out-of-band sample on the new side
+    run_start = np.concatenate([[0], starts])
+    sv = run_side[out_run]
+    last_out = n - 1 if run_side[-1] else int(run_start[-1]) - 1
+    prev = np.empty_like(sv)
+    prev[0] = state0
+    prev[1:] = sv[:-1]
+    ends = run_start[out_run[(sv != prev) & (prev != 0)]]   # first sample on the new side
     t = np.zeros(0)
     if ends.shape[0]:
         pos = y > 0
         zc = np.flatnonzero(pos[:-1] != pos[1:])
         k = np.searchsorted(zc, ends) - 1  # last raw sign change before each exit
-        ok = k >= 0
-        kk = np.where(ok, zc[np.maximum(k, 0)], np.maximum(ends - 1, 0))
-        y0, y1 = y[kk], y[np.minimum(kk + 1, y.shape[0] - 1)]
-        denom = np.where(y0 != y1, y0 - y1, 1.0)
+        kk = np.maximum(ends - 1, 0)       # none (the in-band stretch began before y[0])
+        if zc.shape[0]:
+            kk = np.where(k >= 0, zc[np.maximum(k, 0)], kk)
+        y0, y1 = y[kk], y[np.minimum(kk + 1, n - 1)]
+        denom = np.where(y0 != y1, y0 - y1, 1)
         t = kk + np.clip(y0 / denom, 0.0, 1.0)
-    return t, int(nz[-1]), int(sv[-1])
+    return t, last_out, int(sv[-1])
 
 
 @dataclass
@@ -109,7 +123,9 @@ def extend_chain(cands: list[F64], horizons: list[float], state: ChainState, hal
         i = int(np.searchsorted(c0, last + lo_k))
         if i < c0.shape[0] and c0[i] <= last + hi_k:
             run = c0[i:]
-            d = np.diff(run, prepend=last)
+            d = np.empty_like(run)
+            d[0] = run[0] - last
+            np.subtract(run[1:], run[:-1], out=d[1:])
             bad = np.flatnonzero((d < lo_k) | (d > hi_k))
             n = int(bad[0]) if bad.shape[0] else run.shape[0]
             out_t.append(run[:n])

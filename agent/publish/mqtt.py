@@ -36,6 +36,7 @@ Design
 
 from __future__ import annotations
 
+import os
 import random
 import ssl
 import threading
@@ -108,6 +109,8 @@ class PublisherConfig:
         for name in ("host", "client_id", "username", "ca_file", "cert_file", "key_file"):
             if sec.has(name):
                 kw[name] = sec.get(name, str, required=True)
+                if name.endswith("_file") and not os.path.isfile(kw[name]):
+                    raise sec.error(name, f"file not found: {kw[name]}")
                 if name.endswith("_file"):
                     kw[name] = resolve(kw[name])
         for name in ("port", "keepalive_s", "session_expiry_s", "max_inflight", "max_attempts",
@@ -175,8 +178,9 @@ def default_presence_body(outbox: Outbox, started: float) -> PresenceBody:
 class Publisher:
     """Drains an :class:`Outbox` to an MQTT broker; call :meth:`run` on one thread.
 
-    ``outbox`` is used only from the thread that calls :meth:`run` / :meth:`step` (the outbox
-    serialises access, so a producer thread may keep calling ``outbox.put``).
+    All paho callbacks and outbox calls happen on the thread that calls :meth:`run` /
+    :meth:`step`; a producer may keep calling ``put`` on the same or another :class:`Outbox`
+    of the same file from its own thread.
     """
 
     def __init__(self, outbox: Outbox, config: PublisherConfig, *,
@@ -199,6 +203,8 @@ class Publisher:
         self._server_max_packet: int | None = None
         self._last_resend_check = 0.0
         self._overdue_backlog = False
+        self._closing = False
+        self._window = config.max_inflight
         self._last_heartbeat = 0.0
         self._ack_topic = topics.ack_topic(outbox.site, outbox.device)
         self._presence_topic = topics.topic(outbox.site, outbox.device, topics.PRESENCE_KIND)
@@ -293,11 +299,17 @@ class Publisher:
         self._server_max_packet = None
         if properties is not None and hasattr(properties, "MaximumPacketSize"):
             self._server_max_packet = int(properties.MaximumPacketSize)
+        # MQTT 5.0 cl. 3.2.2.3.3: never more unacknowledged QoS 1 PUBLISHes than the server's
+        # Receive Maximum (paho does not enforce it).
+        self._window = self.config.max_inflight
+        if properties is not None and hasattr(properties, "ReceiveMaximum"):
+            self._window = max(1, min(self._window, int(properties.ReceiveMaximum)))
         self._inflight.clear()
         client.subscribe(self._ack_topic, qos=1)
         client.publish(self._presence_topic, self._presence("online"), qos=1, retain=True)
         requeued = self.outbox.requeue_unacknowledged()
         log.info("mqtt_connected", host=self.config.host, port=self.config.port,
+                 window=self._window,
                  session_present=bool(getattr(flags, "session_present", False)),
                  server_max_packet=self._server_max_packet, requeued=requeued)
 
@@ -306,6 +318,7 @@ class Publisher:
         now = self._now()
         was_connected = self._connected
         self._connected = False
+        inflight = len(self._inflight)
         self._inflight.clear()
         self.stats.disconnects += 1
         self.stats.last_disconnect_reason = str(reason_code)
@@ -313,8 +326,11 @@ class Publisher:
         up_for = now - (self.stats.last_connect_at or now)
         if was_connected and up_for >= max(30.0, 2 * self.config.keepalive_s):
             self._failures = 0  # a connection that held resets the backoff
-        log.warning("mqtt_disconnected", reason=str(reason_code), was_connected=was_connected,
-                    up_for_s=round(up_for, 2), inflight_dropped=len(self._inflight))
+        (log.info if self._closing else log.warning)(
+            "mqtt_disconnected", reason=str(reason_code), was_connected=was_connected,
+            up_for_s=round(up_for, 2), inflight_dropped=inflight)
+        if self._closing:
+            return
         if self._connecting_since is not None or was_connected:
             self._connect_failed(now, f"disconnected: {reason_code}")
 
@@ -364,7 +380,7 @@ class Publisher:
         return limit
 
     def _pump(self, now: float) -> None:
-        room = self.config.max_inflight - len(self._inflight)
+        room = self._window - len(self._inflight)
         if room <= 0:
             return
         # The overdue scan walks every unacknowledged row, so it runs at most every
@@ -428,15 +444,23 @@ class Publisher:
         log.info("publisher_start", device=self.outbox.device, epoch=self.outbox.epoch,
                  previous_run=self.outbox.previous_run, host=self.config.host,
                  port=self.config.port, protocol=self.config.protocol, tls=self.config.tls)
+        self._closing = False
         deadline = None if max_seconds is None else self._now() + max_seconds
         try:
             while not stop.is_set() and (deadline is None or self._now() < deadline):
-                self.step()
+                try:
+                    self.step()
+                except Exception:  # the publisher thread must not die
+                    # e.g. a full disk under the outbox: loud in the log, retried each second;
+                    # nothing is lost, the rows stay in the outbox.
+                    log.exception("publisher_step_failed")
+                    stop.wait(1.0)
         finally:
             self.close()
 
     def close(self, timeout: float = 2.0) -> None:
         """Publish the retained "offline" presence (a clean DISCONNECT suppresses the Will)."""
+        self._closing = True
         if self._connected:
             info = self._client.publish(self._presence_topic, self._presence("offline"),
                                         qos=1, retain=True)

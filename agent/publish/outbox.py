@@ -28,9 +28,9 @@ the restarted agent would then reuse those sequence numbers for different data, 
 collector would discard the new data as duplicates -- silent loss. Callers batch with
 :meth:`Outbox.put_many` to amortise the fsync.
 
-One :class:`Outbox` object per thread (SQLite connections are not shared across threads);
-several objects may open the same file: the sequence counter is advanced inside a
-``BEGIN IMMEDIATE`` transaction and the busy timeout waits for the other writer.
+An :class:`Outbox` may be shared by threads (its calls are serialised by a lock), and several
+objects -- in one process or several -- may open the same file: the sequence counter is advanced
+inside a ``BEGIN IMMEDIATE`` transaction and the busy timeout waits for the other writer.
 """
 
 from __future__ import annotations
@@ -67,6 +67,7 @@ def _locked(method: Callable[_P, _R]) -> Callable[_P, _R]:
             return method(*args, **kwargs)
 
     return wrapper
+
 
 SCHEMA_VERSION = 1
 
@@ -251,16 +252,21 @@ class Outbox:
         self.limits = limits or OutboxLimits()
         self._clock = clock
         self._lock = threading.RLock()
-        self._db = sqlite3.connect(
-            str(self.path), timeout=busy_timeout_s, isolation_level=None,
-            check_same_thread=False,  # access is serialised by self._lock
-        )
-        self._db.execute(f"PRAGMA busy_timeout = {int(busy_timeout_s * 1000)}")
-        mode = self._db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-        if str(mode).lower() != "wal":
-            raise OutboxError(f"{self.path}: cannot switch SQLite to WAL (got {mode})")
-        self._db.execute("PRAGMA synchronous = FULL")
-        self.epoch, self.previous_run = self._init_schema()
+        try:
+            self._db = sqlite3.connect(
+                str(self.path), timeout=busy_timeout_s, isolation_level=None,
+                check_same_thread=False,  # access is serialised by self._lock
+            )
+            self._db.execute(f"PRAGMA busy_timeout = {int(busy_timeout_s * 1000)}")
+            mode = self._db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+            if str(mode).lower() != "wal":
+                raise OutboxError(f"{self.path}: cannot switch SQLite to WAL (got {mode})")
+            self._db.execute("PRAGMA synchronous = FULL")
+            self.epoch, self.previous_run = self._init_schema()
+        except sqlite3.Error as exc:
+            # A damaged or foreign file is left untouched for inspection: never recreated
+            # silently (that would hide the loss of whatever it held).
+            raise OutboxError(f"{self.path}: cannot use as an outbox: {exc}") from None
         self._gap_topic = topics.topic(site, device, topics.GAP_KIND)
         self._identity = codec.Identity(site=site, device=device, epoch=self.epoch)
 

@@ -283,6 +283,47 @@ def moving_rms_mean(t_utc: npt.ArrayLike, values_v: npt.ArrayLike,
     return t[idx], mean
 
 
+def ten_minute_means(t_utc: npt.ArrayLike, values_v: npt.ArrayLike,
+                     flagged: npt.ArrayLike | None = None, *, period_s: float = 1.0,
+                     min_coverage: float = 0.99) -> tuple[F64, F64, npt.NDArray[np.bool_]]:
+    """Clock-aligned 10-min RMS means of regularly spaced values (e.g. per-second RMS).
+
+    Intervals start on multiples of 600 s UTC; one is kept when at least ``min_coverage``
+    of its values are present. An interval holding a flagged value is flagged (the flag
+    carries into longer aggregates, IEC 61000-4-30 Ed.3, from memory).
+
+    Parameters
+    ----------
+    t_utc : numeric  [s]  start of each value's period
+    values_v : numeric  [V]  RMS values (NaN = missing)
+    flagged : bool array, optional  values overlapping an RMS event
+    period_s : float  [s]  spacing of the values
+    min_coverage : float  share of the interval's values needed (common practice: 99 %)
+
+    Returns
+    -------
+    (interval start [s], mean [V] = sqrt(mean of squares), flagged) per kept interval.
+    """
+    t = np.asarray(t_utc, dtype=np.float64).ravel()
+    v = np.asarray(values_v, dtype=np.float64).ravel()
+    fl = (np.zeros(t.shape, dtype=bool) if flagged is None
+          else np.asarray(flagged, dtype=bool).ravel())
+    if not (t.shape == v.shape == fl.shape):
+        raise ValueError("t_utc, values_v and flagged must have the same length")
+    good = np.isfinite(t) & np.isfinite(v)
+    t, v, fl = t[good], v[good], fl[good]
+    if not t.size:
+        return np.empty(0), np.empty(0), np.empty(0, dtype=bool)
+    slot = np.floor(t / 600.0).astype(np.int64)
+    slots, inverse = np.unique(slot, return_inverse=True)
+    count = np.bincount(inverse, minlength=slots.size)
+    square = np.bincount(inverse, weights=v * v, minlength=slots.size)
+    any_flag = np.bincount(inverse, weights=fl.astype(float), minlength=slots.size) > 0
+    keep = count >= min_coverage * 600.0 / period_s
+    mean = np.sqrt(square[keep] / count[keep]).astype(np.float64)
+    return (slots[keep] * 600.0).astype(np.float64), mean, any_flag[keep]
+
+
 def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
                         rms_max_v: npt.ArrayLike | None, nominal_v: float, *,
                         ten_min_means_v: npt.ArrayLike | None = None,

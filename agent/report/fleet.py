@@ -43,7 +43,6 @@ from agent.collect.correlate import (
     sarfi,
 )
 from agent.collect.outages import device_outage_windows
-from agent.report.analysis import infer_nominal
 from agent.report.compliance import (
     ansi_c84_1,
     en50160_voltage,
@@ -51,8 +50,9 @@ from agent.report.compliance import (
     overvoltage_summary,
     standard_for,
     summarise,
+    ten_minute_means,
 )
-from agent.store.recorder import RecorderStore
+from agent.store.recorder import RecorderStore, from_json
 from agent.wire.codec import summary_arrays
 from agent.wire.records import FLAG_EVENT
 
@@ -62,9 +62,22 @@ REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
 #: missed heartbeats; the edge sends one every 300 s by default).
 SILENT_AFTER_S = 900.0
-#: A stored 10-min aggregate counts as a 10-min mean when it covers this much [s] (one 60-Hz
-#: cycle short of 600 s still counts: the interval is resynchronised to the clock tick).
-TEN_MIN_FULL_S = 599.9
+#: A stored 10-min aggregate is a 10-min mean when it holds this many 10/12-cycle values:
+#: 600 s of 0.2-s intervals is 3000 at 50 or 60 Hz; 2900 leaves room for frequency
+#: deviation and the resynchronisation at the 10-min tick (IEC 61000-4-30 Ed.3, common
+#: practice for the margin).
+TEN_MIN_FULL_COUNT = 2900
+
+
+#: Declared supply voltages in use [V, line to neutral] (IEC 60038 and ANSI C84.1 nominal
+#: systems), for a home whose store records no nominal. (The same list as
+#: agent.report.analysis, kept here so a report does not import the measurement chain.)
+STANDARD_NOMINALS = (100.0, 110.0, 115.0, 120.0, 127.0, 220.0, 230.0, 240.0, 277.0)
+
+
+def infer_nominal(rms_v: float) -> float:
+    """Nearest standard nominal voltage to a median RMS value [V] (log distance)."""
+    return min(STANDARD_NOMINALS, key=lambda n: abs(math.log(rms_v / n)))
 
 
 def _from_stored_json(value: Any) -> Any:
@@ -236,21 +249,9 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     compliance: dict[str, Any] | None = None
     overvoltage: dict[str, Any] | None = None
     standard = standard_for(nominal, hz) if nominal else None
+    if nominal:
+        compliance = _compliance(standard or "ansi", nominal, point, trend, ten_min)
     if nominal and trend is not None:
-        # Per channel: judge the worst channel (each channel is one line to neutral).
-        if standard == "ansi":
-            per_channel = [ansi_c84_1(trend["mean"][:, c], nominal, point,
-                                      exclude=trend["flagged"])
-                           for c in range(trend["mean"].shape[1])]
-        elif ten_min.size:
-            per_channel = [en50160_voltage(ten_min[:, c], nominal)
-                           for c in range(ten_min.shape[1])]
-        else:
-            per_channel = [en50160_voltage([], nominal)]
-        compliance = min(per_channel, key=_compliance_rank)
-        compliance["basis"] = ("per-second means, event-flagged seconds excluded"
-                               if standard == "ansi" else "10-min aggregates")
-        compliance["summary"] = summarise(compliance)
         if ten_min.size:
             ten_means = ten_min.ravel()
         else:  # 10-min moving means of each channel from the per-second values
@@ -267,11 +268,6 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
         overvoltage["seconds_peak_above"] = int(np.count_nonzero(
             np.nanmax(np.where(np.isnan(trend["peak"]), -np.inf, trend["peak"]), axis=1)
             > limit))
-    elif nominal and ten_min.size and standard == "en50160":
-        compliance = min((en50160_voltage(ten_min[:, c], nominal)
-                          for c in range(ten_min.shape[1])), key=_compliance_rank)
-        compliance["basis"] = "10-min aggregates"
-        compliance["summary"] = summarise(compliance)
 
     if max_swell is not None and overvoltage is not None and nominal:
         # A swell's own maximum (Urms(1/2)) may exceed any per-second value kept.
@@ -303,7 +299,7 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
                and float(dev["state_since"]) >= planned_stop_after)
     if dev.get("state") == "offline" and not planned:
         reasons.append("offline")
-    elif silent_s is not None and silent_s > SILENT_AFTER_S:
+    elif not planned and silent_s is not None and silent_s > SILENT_AFTER_S:
         reasons.append(f"silent for {silent_s:.0f} s")
     return {
         "device": dev["device"], "site": dev["site"], "feeder": model.get("feeder"),
@@ -332,6 +328,44 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     }
 
 
+def _compliance(standard: str, nominal: float, point: str,
+                trend: dict[str, np.ndarray] | None,
+                ten_min: np.ndarray) -> dict[str, Any] | None:
+    """The worst channel's service-voltage compliance (each channel is one line to neutral).
+
+    ANSI C84.1: per-second means (event-flagged seconds not judged), else stored 10-min
+    means. EN 50160: stored 10-min means, else clock-aligned 10-min means formed from the
+    per-second values (flagged intervals not judged).
+    """
+    if standard == "ansi":
+        if trend is not None:
+            results = [ansi_c84_1(trend["mean"][:, c], nominal, point, exclude=trend["flagged"])
+                       for c in range(trend["mean"].shape[1])]
+            basis = "per-second means, event-flagged seconds excluded"
+        elif ten_min.size:
+            results = [ansi_c84_1(ten_min[:, c], nominal, point, interval_s=600.0)
+                       for c in range(ten_min.shape[1])]
+            basis = "10-min aggregates"
+        else:
+            return None
+    elif ten_min.size:
+        results = [en50160_voltage(ten_min[:, c], nominal) for c in range(ten_min.shape[1])]
+        basis = "10-min aggregates"
+    elif trend is not None:
+        results = []
+        for c in range(trend["mean"].shape[1]):
+            _, means, flagged = ten_minute_means(trend["t"], trend["mean"][:, c],
+                                                 trend["flagged"])
+            results.append(en50160_voltage(means, nominal, exclude=flagged))
+        basis = "10-min means of the per-second values, flagged intervals excluded"
+    else:
+        return None
+    worst = min(results, key=_compliance_rank)
+    worst["basis"] = basis
+    worst["summary"] = summarise(worst)
+    return worst
+
+
 def _compliance_rank(result: Mapping[str, Any]) -> int:
     """Worse results first: fail < provisional/partial < pass < no data."""
     verdict = result.get("verdict")
@@ -344,15 +378,54 @@ def _compliance_rank(result: Mapping[str, Any]) -> int:
     return 3
 
 
-def _ten_min(rows: list[dict[str, Any]]) -> np.ndarray:
+def _first_data(store: RecorderStore, devices: list[dict[str, Any]]) -> dict[str, float]:
+    """Earliest time [s UTC] each device is known to have been measuring: its first trend,
+    aggregate or event time, or when it was first seen (read-only SQL)."""
+    first: dict[str, float] = {d["device"]: float(d["first_seen"]) for d in devices
+                               if d.get("first_seen") is not None}
+    for sql in ("SELECT device, MIN(t_utc) FROM trend GROUP BY device",
+                "SELECT device, MIN(t_utc) FROM aggregates GROUP BY device",
+                "SELECT device, MIN(start_utc) FROM events GROUP BY device"):
+        for device, t in store.db.query(sql):
+            if t is not None:
+                first[device] = min(first.get(device, math.inf), float(t))
+    return first
+
+
+def _payloads(store: RecorderStore, table: str, device: str, start_utc: float | None,
+              end_utc: float | None) -> list[Any]:
+    """Stored payloads of one device from ``trend`` or ``aggregates`` in the period
+    (read-only SQL; a summary row is kept when its first second lies in the period)."""
+    assert table in ("trend", "aggregates")
+    sql = f"SELECT payload FROM {table} WHERE device = ?"
+    params: list[Any] = [device]
+    if start_utc is not None:
+        sql += " AND t_utc >= ?"
+        params.append(start_utc)
+    if end_utc is not None:
+        sql += " AND t_utc < ?"
+        params.append(end_utc)
+    rows = store.db.query(sql + " ORDER BY t_utc, epoch, seq", tuple(params))
+    out = []
+    for (text,) in rows:
+        try:
+            out.append(from_json(text))
+        except ValueError:
+            out.append(None)  # counted as unreadable by the caller
+    return out
+
+
+def _ten_min(payloads: list[Any]) -> np.ndarray:
     values = []
-    for row in rows:
-        p = row.get("payload") or {}
+    for p in payloads:
+        if not isinstance(p, dict):
+            continue
         if p.get("kind") != "10min" or not isinstance(p.get("rms"), list):
             continue
-        # A partial interval (the agent started or stopped inside it) is no 10-min mean.
-        duration = p.get("duration_s")
-        if not isinstance(duration, int | float) or duration < TEN_MIN_FULL_S:
+        # A partial interval (the agent started or stopped inside it) is no 10-min mean;
+        # one flagged by an RMS event is not judged (IEC 61000-4-30 flagging, from memory).
+        count = p.get("count")
+        if not isinstance(count, int) or count < TEN_MIN_FULL_COUNT or p.get("flagged"):
             continue
         values.append([math.nan if x is None else float(x) for x in p["rms"]])
     if not values:
@@ -365,7 +438,8 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
                  default_nominal_v: float | None = None, min_homes: int = 2,
                  window_s: float = SIMULTANEITY_WINDOW_S,
                  temporal_window_s: float = TEMPORAL_WINDOW_S,
-                 planned_stop_after: float | None = None) -> dict[str, Any]:
+                 planned_stop_after: float | None = None, start_utc: float | None = None,
+                 end_utc: float | None = None) -> dict[str, Any]:
     """The fleet report of everything in ``store`` (read-only).
 
     Parameters
@@ -378,6 +452,9 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     temporal_window_s : float  [s]  IEEE 1564 temporal aggregation window (one minute)
     planned_stop_after : float, optional  [s UTC] devices that went offline at or after this
         time stopped as planned (a maintenance window, the end of a demo): not flagged
+    start_utc, end_utc : float, optional  [s UTC] the reporting period ``[start, end)``:
+        events that start in it, per-second and 10-min values inside it, and the homes
+        monitored during it (first seen before its end, last seen after its start)
 
     Returns
     -------
@@ -386,8 +463,14 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     ``attention`` (homes needing a look), ``store`` counts (dead letters, gaps).
     """
     now = time.time() if now is None else now
-    devices = store.devices()
-    all_events = store.events()
+    if start_utc is not None and end_utc is not None and not start_utc < end_utc:
+        raise ValueError(f"the period start {start_utc} is not before its end {end_utc}")
+    # Monitored in the period: heard from at or after its start, and either known before
+    # its end or with data inside it (a store may learn a site model after the data).
+    devices = [d for d in store.devices()
+               if start_utc is None or d.get("last_seen") is None or d["last_seen"] >= start_utc]
+    all_events = store.events(start_from=start_utc, start_before=end_utc)
+    first_data = _first_data(store, devices) if end_utc is not None else {}
     by_device: dict[str, list[dict[str, Any]]] = {}
     for ev in all_events:
         by_device.setdefault(ev["device"], []).append(ev)
@@ -403,11 +486,16 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         name = dev["device"]
         models[name] = dev.get("model") or {}
         trend = _Trend()
-        for row in store.trend(name):
-            trend.add(row["payload"])
+        for payload in _payloads(store, "trend", name, start_utc, end_utc):
+            trend.add(payload)
         events = by_device.get(name, [])
-        sections.append(_device_section(dev, events, trend.arrays(),
-                                        _ten_min(store.aggregates(name)), trend.errors, now,
+        arrays = trend.arrays()
+        if end_utc is not None and first_data.get(name, dev.get("first_seen") or 0.0) >= end_utc:
+            continue  # not yet monitored in the period
+        sections.append(_device_section(dev, events, arrays,
+                                        _ten_min(_payloads(store, "aggregates", name,
+                                                           start_utc, end_utc)),
+                                        trend.errors, now,
                                         default_nominal_v, planned_stop_after))
         for ev in events:
             rec = _record(ev, models[name])
@@ -456,6 +544,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     return {
         "report": "halfcycle fleet report", "version": REPORT_VERSION,
         "generated": _iso(now), "homes_monitored": homes,
+        "period_requested": {"start": _iso(start_utc), "end": _iso(end_utc)},
         "sites": sorted({s["site"] for s in sections}),
         "period": {"first_event": _iso(min(starts)) if starts else None,
                    "last_event": _iso(max(starts)) if starts else None,
@@ -474,7 +563,9 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         "outage_errors": outage_errors,
         "attention": [{"device": s["device"], "site": s["site"], "reasons": s["attention"]}
                       for s in sections if s["attention"]],
-        "store": {"events": len(all_events), "dead_letters": store.count("dead_letters"),
+        "store": {"events": len(all_events),
+                  "events_not_correlated": len(all_events) - len(records),
+                  "dead_letters": store.count("dead_letters"),
                   "gaps": store.count("gaps"), "captures": store.count("captures")},
     }
 
@@ -618,4 +709,13 @@ def render_text(report: Mapping[str, Any]) -> str:
     lines.append("")
     lines.append(f"store: {st['events']} events, {st['captures']} captures, {st['gaps']} gap "
                  f"notices, {st['dead_letters']} dead letters")
+    unreadable = {d["device"]: d["trend_rows_unreadable"] for d in report["devices"]
+                  if d["trend_rows_unreadable"]}
+    if unreadable:
+        lines.append(f"NOT USED: unreadable per-second rows {unreadable}")
+    if st.get("events_not_correlated"):
+        lines.append(f"NOT USED in fleet figures: {st['events_not_correlated']} events without "
+                     "kind, start or level")
+    for problem in report.get("outage_errors") or []:
+        lines.append(f"NOT USED in outage windows: {problem}")
     return "\n".join(lines) + "\n"

@@ -158,6 +158,32 @@ def unpack_units(packed: list[object], n: int) -> tuple[I64, BOOL]:
     return units[0], missing[0]
 
 
+def check_header(packed: Sequence[object], n: int) -> tuple[int, int]:
+    """``(first, width)`` of a packed array of ``n`` values after the checks that need no
+    decoding: deltas and mask are bytes of exactly the right length with zero padding bits.
+    The caller has checked the element types against the schema."""
+    if n < 1:
+        raise WireError("a packed array holds at least one value", "array")
+    first, width, data = int(packed[1]), int(packed[2]), packed[3]  # type: ignore[call-overload]
+    if not isinstance(data, bytes):
+        raise WireError("deltas must be bytes", "array")
+    if not 0 <= width <= MAX_WIDTH:
+        raise WireError(f"width {width} outside 0..{MAX_WIDTH}", "array")
+    _check_stream(data, n - 1, width)
+    if len(packed) > 4:
+        mask_data = packed[4]
+        if not isinstance(mask_data, bytes):
+            raise WireError("mask must be bytes", "array")
+        _check_mask_bytes(mask_data, n)
+    return first, width
+
+
+def value_span(n: int, width: int) -> int:
+    """Largest possible ``|value[i] - first|`` of ``n`` values with ``width``-bit deltas
+    [units]: a zigzag code below 2^width is a delta of magnitude at most 2^(width-1)."""
+    return (n - 1) << (width - 1) if width else 0
+
+
 def unpack_units_many(arrays: Sequence[Sequence[object]], n: int) -> tuple[I64, BOOL]:
     """Units and missing masks of several packed arrays of ``n`` values each, shape (A, n).
 
@@ -175,25 +201,20 @@ def unpack_units_many(arrays: Sequence[Sequence[object]], n: int) -> tuple[I64, 
     masks: list[bytes] = []
     mask_rows: list[int] = []
     offset = 0
+    in_int32 = True  # proven without decoding (see value_span)
     for row, packed in enumerate(arrays):
         try:
-            first, width, data = int(packed[1]), int(packed[2]), packed[3]  # type: ignore[call-overload]
-            if not isinstance(data, bytes):
-                raise WireError("deltas must be bytes", "array")
-            if not 0 <= width <= MAX_WIDTH:
-                raise WireError(f"width {width} outside 0..{MAX_WIDTH}", "array")
-            _check_stream(data, count, width)
-            if len(packed) > 4:
-                mask_data = packed[4]
-                if not isinstance(mask_data, bytes):
-                    raise WireError("mask must be bytes", "array")
-                _check_mask_bytes(mask_data, n)
-                masks.append(mask_data)
-                mask_rows.append(row)
+            first, width = check_header(packed, n)
         except WireError as exc:
             if len(arrays) == 1:
                 raise
             raise WireError(f"array {row}: {exc.reason}", exc.code) from None
+        data: bytes = packed[3]  # type: ignore[assignment]
+        if len(packed) > 4:
+            masks.append(packed[4])  # type: ignore[arg-type]
+            mask_rows.append(row)
+        span = value_span(n, width)
+        in_int32 = in_int32 and INT32_MIN + span <= first <= INT32_MAX - span
         starts.append(8 * offset)
         widths.append(width)
         firsts.append(first)
@@ -210,10 +231,11 @@ def unpack_units_many(arrays: Sequence[Sequence[object]], n: int) -> tuple[I64, 
         z = _gather_bits(b"".join(chunks), head[0], head[1], count)
         np.cumsum((z >> 1) ^ -(z & 1), axis=1, out=units[:, 1:])  # unzigzag, then sum
         units[:, 1:] += head[2]
-    if units.min() < INT32_MIN or units.max() > INT32_MAX:
+    if not in_int32 and (units.min() < INT32_MIN or units.max() > INT32_MAX):
         if rows == 1:
             raise WireError("decoded value outside int32 units", "array")
-        bad = int(np.flatnonzero((units < INT32_MIN).any(axis=1) | (units > INT32_MAX).any(axis=1))[0])
+        outside = (units < INT32_MIN).any(axis=1) | (units > INT32_MAX).any(axis=1)
+        bad = int(np.flatnonzero(outside)[0])
         raise WireError(f"array {bad}: decoded value outside int32 units", "array")
     if masks:
         stacked = np.frombuffer(b"".join(masks), dtype=np.uint8).reshape(len(masks), -1)

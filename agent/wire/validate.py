@@ -38,7 +38,14 @@ import numpy as np
 
 from agent.resources import schemas_dir
 from agent.wire.errors import WireError
-from agent.wire.packing import unpack_units, unpack_units_many
+from agent.wire.packing import (
+    INT32_MAX,
+    INT32_MIN,
+    check_header,
+    unpack_units,
+    unpack_units_many,
+    value_span,
+)
 
 Check = Callable[[Any, str], None]
 # A compiled node as a plain yes/no test: no paths, no exceptions (the fast path).
@@ -423,10 +430,10 @@ class _Compiler:
         keys = set(node) - _ANNOTATIONS
         if node.get("x-msgpack") != "bin" or not keys <= {"not"}:
             return None
-        inner = node.get("not")
-        if keys and not (isinstance(inner, dict) and set(inner) - _ANNOTATIONS == {"type"}):
-            return None
         if keys:
+            inner = node["not"]
+            if not (isinstance(inner, dict) and set(inner) - _ANNOTATIONS == {"type"}):
+                return None
             names = inner["type"] if isinstance(inner["type"], list) else [inner["type"]]
             _type_pred(names, self.strict_int)  # unknown names still fail at load time
         return float(node.get("x-maxBytes", math.inf))
@@ -458,6 +465,12 @@ class _Compiler:
                     return (isinstance(x, int) and not isinstance(x, bool)
                             and lo <= x <= hi and xlo < x < xhi)
                 return number_in_range
+            if self.strict_int and xlo == -math.inf and xhi == math.inf:
+                def strict_integer_in_range(x: Any) -> bool:
+                    if type(x) is int:  # the common case, before the subclass rules
+                        return lo <= x <= hi
+                    return isinstance(x, int) and not isinstance(x, bool) and lo <= x <= hi
+                return strict_integer_in_range
             if self.strict_int:
                 return lambda x: (isinstance(x, int) and not isinstance(x, bool)
                                   and lo <= x <= hi and xlo < x < xhi)
@@ -478,6 +491,12 @@ class _Compiler:
             search = _ecma_pattern(node["pattern"]).search
             return lambda x: (isinstance(x, str) and min_len <= len(x) <= max_len
                               and search(x) is not None)
+        # A typed array or object: the container test folds into the item walk.
+        if kind == "array" and keys <= {"type", "items", "prefixItems", "minItems", "maxItems"}:
+            return self._array_pred(node, must_be_list=True)
+        if kind == "object" and keys <= {"type", "required", "properties",
+                                         "additionalProperties", "propertyNames"}:
+            return self._object_pred(node, must_be_dict=True)
         return None
 
     def predicate(self, node: Any) -> Pred:
@@ -568,7 +587,7 @@ class _Compiler:
 
         return _conjunction(tests)
 
-    def _array_pred(self, node: dict[str, Any]) -> Pred:
+    def _array_pred(self, node: dict[str, Any], must_be_list: bool = False) -> Pred:
         prefix = [self.predicate(s) for s in node.get("prefixItems", [])]
         rest = self.predicate(node["items"]) if "items" in node else None
         lo = int(node.get("minItems", 0))
@@ -578,10 +597,10 @@ class _Compiler:
 
         def array_ok(x: Any) -> bool:
             if not isinstance(x, list):
-                return True
+                return not must_be_list
             if not lo <= len(x) <= top:
                 return False
-            for test, item in zip(prefix, x):
+            for test, item in zip(prefix, x, strict=False):  # prefix may be longer
                 if not test(item):
                     return False
             if rest is not None:
@@ -591,7 +610,7 @@ class _Compiler:
             return True
         return array_ok
 
-    def _object_pred(self, node: dict[str, Any]) -> Pred:
+    def _object_pred(self, node: dict[str, Any], must_be_dict: bool = False) -> Pred:
         required = frozenset(node.get("required", []))
         props = {k: self.predicate(v) for k, v in node.get("properties", {}).items()}
         extra = node.get("additionalProperties", True)
@@ -601,7 +620,7 @@ class _Compiler:
 
         def closed_object_ok(x: Any) -> bool:
             if not isinstance(x, dict):
-                return True
+                return not must_be_dict
             if not required <= x.keys():
                 return False
             get = props.get
@@ -613,7 +632,7 @@ class _Compiler:
 
         def object_ok(x: Any) -> bool:
             if not isinstance(x, dict):
-                return True
+                return not must_be_dict
             if not required <= x.keys():
                 return False
             for k, value in x.items():
@@ -623,9 +642,7 @@ class _Compiler:
                 if test is not None:
                     if not test(value):
                         return False
-                elif extra is False:
-                    return False
-                elif extra_test is not None and not extra_test(value):
+                elif extra is False or (extra_test is not None and not extra_test(value)):
                     return False
             return True
         return closed_object_ok if closed else object_ok
@@ -746,6 +763,8 @@ def _packed_check(packed: list[Any], n: int, prop: dict[str, Any], path: str) ->
 
 _PER_CHANNEL = ("rms_min", "rms_mean", "rms_max", "thd")
 _SINGLE = ("hz", "imbalance", "flags")
+_FIELDS = _PER_CHANNEL + _SINGLE
+_PER_CHANNEL_SET = frozenset(_PER_CHANNEL)
 
 
 def _semantic_summary_slow(msg: dict[str, Any], schema: dict[str, Any]) -> None:
@@ -785,48 +804,55 @@ def _limits(prop: dict[str, Any], exp: int) -> tuple[float, float, float]:
     return entry[1], entry[2], entry[3]
 
 
-def _semantic_summary_fast(msg: dict[str, Any], schema: dict[str, Any]) -> None:
-    """All packed arrays of a summary in one numpy pass: sizes, padding, int32, x-exp and
-    x-range; raises WireError on the first problem found (not necessarily the first in
-    field order)."""
+def _semantic_summary_fast(msg: dict[str, Any], schema: dict[str, Any], *,
+                           shortcut: bool = True) -> None:
+    """All packed arrays of a summary at once: sizes, padding, int32, x-exp and x-range;
+    raises WireError on the first problem found (not necessarily the first in field order).
+
+    Each header gets a few scalar checks. Values need no decoding when their bound proves
+    them in range: ``first`` plus or minus :func:`value_span` (a delta of ``width`` bits is
+    at most 2^(width-1) units) inside int32 and the field's x-range. Otherwise (or with
+    ``shortcut=False``) one numpy pass decodes every array and checks every value.
+    """
     n = msg["n"]
     nch = len(msg["channels"])
     props = schema["properties"]
     arrays: list[list[Any]] = []
-    fields: list[dict[str, Any]] = []
-    for name in _PER_CHANNEL:
-        per_channel = msg[name]
-        if len(per_channel) != nch:
-            raise WireError(f"$.{name}: {len(per_channel)} entries for {nch} channels",
-                            "semantic")
+    bounds: list[tuple[float, float, float]] = []  # (scale, lowest, highest) per array
+    proven = shortcut
+    for name in _FIELDS:
+        value = msg[name]
         prop = props[name]
-        for packed in per_channel:
-            if packed is not None:
-                arrays.append(packed)
-                fields.append(prop)
-    for name in _SINGLE:
-        packed = msg[name]
-        if packed is not None:
+        if name in _PER_CHANNEL_SET:
+            if len(value) != nch:
+                raise WireError(f"$.{name}: {len(value)} entries for {nch} channels",
+                                "semantic")
+            group = value
+        else:
+            group = (value,)
+        for packed in group:
+            if packed is None:
+                continue
+            exp = packed[0]
+            want = prop.get("x-exp")
+            if want is not None and exp != want:
+                raise WireError(f"exp must be {want}, got {exp}", "array")
+            first, width = check_header(packed, n)
+            limits = _limits(prop, exp)
+            if proven:
+                span = value_span(n, width)
+                lo, hi = first - span, first + span
+                # Float rounding is monotonic, so the bound's products bound every value's.
+                proven = (INT32_MIN <= lo and hi <= INT32_MAX and lo * limits[0] >= limits[1]
+                          and hi * limits[0] <= limits[2])
             arrays.append(packed)
-            fields.append(props[name])
-    if not arrays:
+            bounds.append(limits)
+    if proven or not arrays:
         return
-    scales: list[float] = []
-    lows: list[float] = []
-    highs: list[float] = []
-    for packed, prop in zip(arrays, fields):
-        exp = packed[0]
-        want = prop.get("x-exp")
-        if want is not None and exp != want:
-            raise WireError(f"exp must be {want}, got {exp}", "array")
-        scale, lo, hi = _limits(prop, exp)
-        scales.append(scale)
-        lows.append(lo)
-        highs.append(hi)
     units, missing = unpack_units_many(arrays, n)
-    limits = np.array([scales, lows, highs])[:, :, None]
-    values = units * limits[0]
-    outside = (values < limits[1]) | (values > limits[2])
+    table = np.array(bounds).T[:, :, None]
+    values = units * table[0]
+    outside = (values < table[1]) | (values > table[2])
     if outside.any() and (outside & ~missing).any():
         raise WireError("values outside the field's x-range", "array")
 
