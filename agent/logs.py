@@ -1,29 +1,36 @@
-"""Structured JSON logs (structlog) for the long-running commands; secrets never logged."""
+"""Structured JSON logs (structlog) for the long-running commands, one object per line.
+
+Secrets never reach the log: no component logs credentials, and this processor chain also
+blanks any key that looks like one, as a second line of defence.
+"""
 
 from __future__ import annotations
 
 import logging
 import sys
 from collections.abc import MutableMapping
-from typing import Any
+from typing import Any, TextIO
 
 import structlog
 
-# Keys whose values are replaced before a log line is rendered.
-SECRET_KEYS = frozenset({"password", "passwd", "secret", "token", "key_password", "auth"})
+# A log key containing one of these is replaced before the line is rendered.
+SECRET_MARKERS = ("password", "passwd", "secret", "token", "key")
 
 
 def redact_secrets(
     _logger: Any, _name: str, event: MutableMapping[str, Any]
 ) -> MutableMapping[str, Any]:
     for key in list(event):
-        if key.lower() in SECRET_KEYS:
-            event[key] = "***"
+        if key != "event" and any(m in key.lower() for m in SECRET_MARKERS):
+            event[key] = "<redacted>"
     return event
 
 
-def configure(level: str = "info") -> None:
-    """One JSON object per line on stderr (journald keeps them as they are)."""
+def configure(level: str | int = "info", stream: TextIO | None = None) -> None:
+    """Route structlog to ``stream`` (default stderr) as JSON lines with UTC timestamps;
+    journald keeps them as they are."""
+    if isinstance(level, str):
+        level = logging.getLevelNamesMapping()[level.upper()]
     structlog.configure(
         processors=[
             structlog.contextvars.merge_contextvars,
@@ -33,9 +40,7 @@ def configure(level: str = "info") -> None:
             structlog.processors.format_exc_info,
             structlog.processors.JSONRenderer(sort_keys=True),
         ],
-        wrapper_class=structlog.make_filtering_bound_logger(
-            logging.getLevelNamesMapping()[level.upper()]
-        ),
-        logger_factory=structlog.PrintLoggerFactory(file=sys.stderr),
-        cache_logger_on_first_use=True,
+        wrapper_class=structlog.make_filtering_bound_logger(level),
+        logger_factory=structlog.PrintLoggerFactory(stream or sys.stderr),
+        cache_logger_on_first_use=False,
     )

@@ -318,11 +318,11 @@ def body_factory(kind: str, pad: int = 0) -> Callable[[Any], bytes]:
 
 def _agent_main(argv: list[str]) -> int:
     """Produce until ``--total`` sequence numbers exist, publish until drained, exit 0."""
-    from agent.publish.logsetup import configure_json_logging
+    from agent.logs import configure as configure_json_logging
     from agent.publish.mqtt import Publisher
     from agent.publish.outbox import Lane, Outbox
 
-    configure_json_logging(sys.stderr)  # stdout carries "ready"/"drained" for the test
+    configure_json_logging(stream=sys.stderr)  # stdout carries "ready"/"drained" for the test
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--db", required=True)

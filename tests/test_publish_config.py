@@ -13,7 +13,7 @@ import structlog
 from _mqtt_helpers import SITE, Broker, broker, publisher_config, wait_for  # noqa: F401
 
 from agent.config import ConfigError, Section
-from agent.publish.logsetup import configure_json_logging
+from agent.logs import configure as configure_json_logging
 from agent.publish.mqtt import Publisher, PublisherConfig
 from agent.publish.outbox import Outbox
 
