@@ -6,7 +6,7 @@ returns it, adding its own results. The standalone recorder (``halfcycle analyze
 edge agent (``halfcycle edge run``) and the benchmarks all build their chain with
 :func:`edge_stages`, then append their own sink stage.
 
-    source ─ block ─▶ measure ─▶ detect ─▶ classify ─▶ journal ─▶ capture ─▶ sink
+    source ─ block ─▶ measure ─▶ detect ─▶ classify ─▶ journal ─▶ capture ─▶ sinks ─▶ forget closed
 """
 
 from __future__ import annotations
@@ -111,13 +111,28 @@ class Journal:
         for update in frame.updates:
             if update.change == "started":
                 self.journal.opened(update.event)
-            else:
-                self.journal.closed(update.event)
         if frame.block is not None and frame.measurement is not None:
             half = frame.measurement.half_cycles
             if len(half):
                 last = float(half.end[-1])
                 self.journal.alive(last, self.timebase.to_utc(last))
+        return frame
+
+
+class ForgetClosed:
+    """Drop ended events from the journal, after the sinks have stored their end.
+
+    It runs last: were the journal to forget an event before the outbox commit of its end,
+    a crash in between would lose that end for good.
+    """
+
+    def __init__(self, journal: OpenEventJournal) -> None:
+        self.journal = journal
+
+    def __call__(self, frame: Frame) -> Frame:
+        for update in frame.updates:
+            if update.change == "ended":
+                self.journal.closed(update.event)
         return frame
 
 
@@ -168,8 +183,10 @@ def edge_stages(
     gains: np.ndarray | None = None,
     capture: CaptureSettings | None = None,
     journal_path: str | Path | None = None,
+    sinks: Sequence[Stage] = (),
 ) -> tuple[list[Stage], EdgeParts]:
-    """Build the edge chain: measure → detect → classify → journal → capture."""
+    """Build the edge chain: measure → detect → classify → journal → capture → sinks →
+    forget closed events."""
     thresholds = thresholds or Thresholds()
     capture = capture or CaptureSettings()
     engine = MeasurementEngine(info, site, thresholds, timebase, gains)
@@ -190,6 +207,9 @@ def edge_stages(
     if journal is not None:
         stages.append(Journal(journal, timebase))
     stages.append(TakeCaptures(recorder, timebase))
+    stages.extend(sinks)
+    if journal is not None:
+        stages.append(ForgetClosed(journal))
     return stages, EdgeParts(engine, detector, recorder, journal)
 
 

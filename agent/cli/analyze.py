@@ -129,11 +129,14 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         channel_names=info.channel_names,
     )
     timebase = ReplayTimebase(info.sample_rate)
-    stages, _ = edge_stages(
-        info, site, timebase, thresholds=Thresholds(interruption=args.interruption)
-    )
     collector = AnalysisCollector(rate=info.sample_rate)
-    stages.append(collector)
+    stages, _ = edge_stages(
+        info,
+        site,
+        timebase,
+        thresholds=Thresholds(interruption=args.interruption),
+        sinks=[collector],
+    )
     seen = 0
 
     def counted() -> Iterator[Block]:

@@ -35,6 +35,7 @@ from agent.publish.outbox import Lane, MessageId, Outbox, OutboxLimits
 from agent.settings import EdgeSettings
 from agent.site import Site
 from agent.wire import codec
+from agent.wire.errors import WireError
 from agent.wire.records import FLAG_BITS, SummaryBatcher, per_second
 
 log = structlog.get_logger("halfcycle.edge")
@@ -166,6 +167,7 @@ class SinkCounters:
     captures: int = 0
     capture_chunks: int = 0
     statuses: int = 0
+    encode_errors: int = 0
     by_kind: dict[str, int] = field(default_factory=dict)
 
 
@@ -203,8 +205,16 @@ class EdgeSink:
         return topics.topic(self.site.site_id, self.site.device_id, kind)
 
     def _queue(self, kind: str, body: dict[str, Any], lane: Lane) -> None:
+        # Validate now, with a stand-in seq: a message our own schema refuses is a bug, and
+        # it must not roll back the block's whole outbox commit (nor stop the agent).
+        try:
+            codec.encode(self.identity.stamp(body, 1))
+        except WireError as exc:
+            self._refused(kind, exc)
+            return
+
         def payload(mid: MessageId, body: dict[str, Any] = body) -> bytes:
-            return codec.encode(self.identity.stamp(body, mid.seq))
+            return codec.encode(self.identity.stamp(body, mid.seq), check=False)
 
         self._pending.append((self._topic(kind), payload, lane))
         self.counters.by_kind[kind] = self.counters.by_kind.get(kind, 0) + 1
@@ -232,12 +242,20 @@ class EdgeSink:
         self.counters.statuses += 1
 
     def event(self, ev: Event, change: str) -> None:
-        self._queue(
-            "event",
-            codec.event_body(ev, change, channel_names=self.info.channel_names),
-            Lane.PRIORITY,
-        )
+        try:
+            # channel_names lists the names of the channels involved, in the same order.
+            body = codec.event_body(
+                ev, change, channel_names=[self.info.channel_names[c] for c in ev.channels]
+            )
+        except WireError as exc:
+            self._refused("event", exc)
+            return
+        self._queue("event", body, Lane.PRIORITY)
         self.counters.events += 1
+
+    def _refused(self, kind: str, exc: WireError) -> None:
+        self.counters.encode_errors += 1
+        log.error("message_refused_by_schema", kind=kind, reason=exc.reason)
 
     def startup(self, recovered: list[Event], previous_run: float | None) -> None:
         """The restart report: when the agent last ran, and events closed by power loss."""
@@ -263,21 +281,33 @@ class EdgeSink:
             got = self.seconds.add(m, final=frame.final)
             if got is not None:
                 t, arrays = got
-                for body in self.batcher.add_many(t, *arrays):
+                try:
+                    bodies = self.batcher.add_many(t, *arrays)
+                except WireError as exc:  # e.g. a second seen twice after a clock step
+                    self._refused("summary", exc)
+                    bodies = []
+                for body in bodies:
                     self._queue("summary", body, Lane.BULK)
                     self.counters.summaries += 1
             for agg in m.aggregates:
                 if agg.kind == "10min":
-                    self._queue(
-                        "aggregate", codec.aggregate_body(agg, self.info.channel_names), Lane.BULK
-                    )
+                    try:
+                        body = codec.aggregate_body(agg, self.info.channel_names)
+                    except WireError as exc:
+                        self._refused("aggregate", exc)
+                        continue
+                    self._queue("aggregate", body, Lane.BULK)
                     self.counters.aggregates += 1
         for update in frame.updates:
             self.event(update.event, update.change)
         for cap in frame.captures:
-            chunks = codec.capture_bodies(
-                cap, topic=self._topic("capture"), max_packet=self.max_packet
-            )
+            try:
+                chunks = codec.capture_bodies(
+                    cap, topic=self._topic("capture"), max_packet=self.max_packet
+                )
+            except WireError as exc:
+                self._refused("capture", exc)
+                continue
             for body in chunks:
                 self._queue("capture", body, Lane.BULK)
             self.counters.captures += 1
@@ -364,16 +394,6 @@ def run_edge(
     timebase = _timebase_for(settings, source, speed if pace else math.inf)
     outbox_path = settings.state_dir / "outbox.sqlite"
     outbox = Outbox(outbox_path, site.device_id, site.site_id, limits=outbox_limits)
-    stages, parts = edge_stages(
-        info,
-        site,
-        timebase,
-        thresholds=settings.thresholds,
-        gains=settings.gains(),
-        capture=settings.capture,
-        journal_path=settings.state_dir / "open-events.json",
-    )
-    assert parts.journal is not None
     sink = EdgeSink(
         outbox,
         site,
@@ -382,12 +402,22 @@ def run_edge(
         summary_seconds=settings.summary_seconds,
         max_packet_bytes=mqtt_config.max_packet_bytes,
     )
+    stages, parts = edge_stages(
+        info,
+        site,
+        timebase,
+        thresholds=settings.thresholds,
+        gains=settings.gains(),
+        capture=settings.capture,
+        journal_path=settings.state_dir / "open-events.json",
+        sinks=[sink],
+    )
+    assert parts.journal is not None
     recovered = parts.journal.recover(time.time())
     for ev in recovered:
         classify_event(ev, site.nominal_hz)
-    sink.startup(recovered, outbox.previous_run)
-    parts.journal.acknowledge(ev.event_id for ev in recovered)
-    stages.append(sink)
+    sink.startup(recovered, outbox.previous_run)  # committed to the outbox before ...
+    parts.journal.acknowledge(ev.event_id for ev in recovered)  # ... the journal forgets them
     log.info(
         "edge_start",
         device=site.device_id,
