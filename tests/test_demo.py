@@ -39,7 +39,8 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     done = subprocess.run(
         [sys.executable, "-m", "agent.cli.main", "demo", "--homes", "4", "--seconds", "20",
          "--dir", str(run_dir), "--json"],
-        capture_output=True, text=True, timeout=150, check=False)
+        capture_output=True, text=True, timeout=150, check=False,
+        cwd=Path(__file__).resolve().parents[1])  # this checkout's agent package
     assert done.returncode == 0, done.stderr[-3000:]
     report = json.loads(done.stdout)
     # Labelled invented in the output and in the files it leaves.
@@ -54,6 +55,7 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     assert [h["role"] for h in report["demo"]["homes"]] == [
         "solar", "leg_loss", "lost_power", "interruption"]
     assert all(h["result"]["outbox_pending"] == 0 for h in homes.values()), homes
+    assert report["demo"]["complete"] is True
 
     # The feeder-wide sag (invented: 0.65 pu for 0.25 s at 4 s) is ONE fleet event with all
     # four homes; its residual is the scenario's within the ±0.2 % Udin dip uncertainty of
@@ -90,6 +92,12 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     # Planned stops at the end of the demo are not reported as units gone offline.
     assert not any("offline" in r for r in attention.values())
     assert report["store"]["dead_letters"] == 0
+    # IEEE 1564 SARFI over N_T = 4 homes: every home's lows fall in the minute after the
+    # 0.65-pu sag (one aggregate each, residual < 0.70): SARFI-90 = SARFI-70 = 4 homes; the
+    # 1.13-pu swell counts for SARFI-110 (sags and swells aggregated apart, common practice).
+    counts = report["sarfi"]["counts"]
+    assert counts["SARFI-90"] == 4 and counts["SARFI-70"] == 4
+    assert counts["SARFI-110"] == 1 and counts["SARFI-120"] == 0
 
 
 def test_demo_without_mosquitto_says_what_to_install(

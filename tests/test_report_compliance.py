@@ -175,3 +175,23 @@ def test_range_check_rejects_bad_limits_and_standard_choice() -> None:
     # Common practice: 60 Hz supplies are judged by ANSI C84.1, 50 Hz ones by EN 50160.
     assert standard_for(120.0, 60.0) == "ansi" and standard_for(230.0, 50.0) == "en50160"
     assert standard_for(120.0, None) == "ansi" and standard_for(230.0, None) == "en50160"
+
+
+def test_ten_minute_means_clock_aligned_and_complete_only() -> None:
+    from agent.report.compliance import ten_minute_means
+
+    start = 1_780_000_200.0  # a multiple of 600 s
+    t = start + np.arange(1800.0)
+    # First interval alternates 240/220 V: RMS = sqrt((240² + 220²) / 2) = sqrt(53000) V
+    # (analytic). Second: 7 values missing, 593 < 99 % of 600 (common practice): dropped.
+    # Third: constant 231 V with one flagged second: kept and flagged.
+    v = np.where(np.arange(1800) % 2 == 0, 240.0, 220.0)
+    v[1200:] = 231.0
+    v[700:707] = np.nan
+    flagged = np.zeros(1800, dtype=bool)
+    flagged[1500] = True
+    starts, means, flags = ten_minute_means(t, v, flagged)
+    assert starts.tolist() == [start, start + 1200.0]
+    assert means[0] == pytest.approx(np.sqrt(53000.0), rel=1e-12)
+    assert means[1] == pytest.approx(231.0)
+    assert flags.tolist() == [False, True]

@@ -117,6 +117,8 @@ def test_fleet_event_with_four_homes(store: RecorderStore) -> None:
     assert fe["kinds"] == ["dip"] and fe["worst_level_pu"] == pytest.approx(0.60)
     assert fe["spread_s"] == pytest.approx(0.015)
     assert fe["share"] == pytest.approx(0.8)
+    # h1-h4 are provisioned on feeder F1 (h5 has no site model): all of F1's homes were hit.
+    assert fe["feeder"] == "F1" and fe["homes_on_feeder"] == 4
 
 
 def test_sarfi_worked_example(store: RecorderStore) -> None:
@@ -256,3 +258,59 @@ def test_cli_period_options(store: RecorderStore, store_url: str,
     assert main(["report", "--store", url, "--json", "--since", "2026-06-01T00:00Z",
                  "--until", "2026-07-01T00:00Z"]) == 0
     assert json.loads(capsys.readouterr().out)["store"]["events"] == 0
+
+
+def _eu_home(s: RecorderStore, device: str, means: list[tuple[float, int, bool]],
+             nominal: tuple[float, float] = (230.0, 50.0)) -> None:
+    """A home (230 V / 50 Hz unless told) with stored 10-min aggregates only
+    (rms, count, flagged)."""
+    from agent.measurement.types import Aggregate
+
+    home = Home(device)
+    for i, (rms, count, flagged) in enumerate(means):
+        home.add(codec.aggregate_body(Aggregate(kind="10min", t_utc=T0 + 600.0 * i,
+                                                duration_s=600.0, rms=(rms,), thd=(0.01,),
+                                                flagged=flagged, count=count), ["L1"]))
+    s.update_device_model(device, SITE, {"nominal_v": nominal[0], "nominal_hz": nominal[1]})
+    s.commit_batch(home.messages)
+
+
+def test_en50160_from_stored_ten_minute_aggregates(tmp_path: Path) -> None:
+    with RecorderStore(f"sqlite:///{tmp_path / 'eu.db'}", tmp_path / "c") as s:
+        # 9 means at 230 V and one at 250 V: all within +10 % (253 V) and 100 % within ±10 %
+        # (EN 50160, pub). A flagged mean at 180 V and a partial one (100 of 3000 intervals)
+        # at 260 V are not judged (IEC 61000-4-30 flagging, from memory).
+        _eu_home(s, "eu1", [(230.0, 3000, False)] * 9 + [(250.0, 3000, False),
+                                                         (180.0, 3000, True), (260.0, 100, False)])
+        # 8 of 10 within ±10 % is below the 95 % share (EN 50160, pub): fails.
+        _eu_home(s, "eu2", [(230.0, 3000, False)] * 8 + [(205.0, 3000, False)] * 2)
+        # A 120 V / 60 Hz home without per-second data: ANSI C84.1 on its 10-min means;
+        # 127 V is above Range A service 126 V (pub), on the Range B limit 127 V (from memory).
+        _eu_home(s, "us1", [(120.0, 3000, False), (127.0, 3000, False)], (120.0, 60.0))
+        r = fleet_report(s, now=T0 + 9000.0)
+    dev = {d["device"]: d for d in r["devices"]}
+    ok, bad = dev["eu1"]["compliance"], dev["eu2"]["compliance"]
+    assert ok["standard"] == "EN 50160" and ok["passed"] is True and ok["count"] == 10
+    assert ok["complete_week"] is False and "provisional: 10 of 1008" in ok["summary"]
+    assert dev["eu1"]["ten_min_aggregates"] == 10
+    assert bad["passed"] is False and "95 %" in bad["rule"]
+    assert bad["band"]["fraction_inside"] == pytest.approx(0.8)
+    assert dev["eu2"]["out_of_range"] is True
+    us = dev["us1"]["compliance"]
+    assert us["standard"] == "ANSI C84.1" and us["verdict"] == "range_b"
+    assert us["range_a"]["time_above_s"] == 600.0 and us["basis"] == "10-min aggregates"
+
+
+def test_swell_in_the_same_minute_as_a_sag_still_counts(tmp_path: Path) -> None:
+    with RecorderStore(f"sqlite:///{tmp_path / 's.db'}", tmp_path / "c") as s:
+        home = Home("h1")
+        home.event("sag", "dip", T0, 0.2, 0.60)
+        home.event("swell", "swell", T0 + 20.0, 0.4, 1.15)  # 20 s later: same minute
+        home.event("sag2", "dip", T0 + 40.0, 0.1, 0.80)  # same minute as the first sag
+        s.commit_batch(home.messages)
+        r = fleet_report(s)
+    # IEEE 1564 one-minute aggregation (from memory): the two sags are one aggregate
+    # (representative 0.60); the swell is aggregated apart from the sags (common practice),
+    # so N_T = 1: SARFI-90 = 1, SARFI-110 = 1.
+    assert r["sarfi"]["counts"]["SARFI-90"] == 1 and r["sarfi"]["counts"]["SARFI-110"] == 1
+    assert r["sarfi"]["events_counted"] == 2

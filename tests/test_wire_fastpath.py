@@ -10,8 +10,10 @@ per-bit numpy decoder written out here.
 from __future__ import annotations
 
 import copy
+import json
 import math
 from functools import partial
+from pathlib import Path
 from typing import Any
 
 import msgpack
@@ -22,6 +24,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
+from agent.resources import schemas_dir
 from agent.wire.codec import decode, encode
 from agent.wire.errors import WireError
 from agent.wire.packing import (
@@ -291,3 +294,26 @@ def test_encoded_summaries_still_round_trip_through_decode() -> None:
     for body in summary_bodies(600, 4, seed=9, k=120):
         msg = dict(body, device="d", site="s", epoch="e", seq=1)
         assert decode(encode(msg)) == msg
+
+
+def test_property_count_keywords_agree_with_jsonschema(tmp_path: Path) -> None:
+    import jsonschema
+
+    from agent.wire.validate import Validator
+
+    schema = json.loads((schemas_dir() / "status.schema.json").read_text())
+    schema["properties"]["outbox_lanes"]["maxProperties"] = 2
+    schema["properties"]["outbox_lanes"]["minProperties"] = 1
+    (tmp_path / "status.schema.json").write_text(json.dumps(schema))
+    ours = Validator(tmp_path)
+    oracle = jsonschema.Draft202012Validator(schema)  # JSON Schema 2020-12, "maxProperties"
+    for lanes in ({}, {"a": 1}, {"a": 1, "b": 2}, {"a": 1, "b": 2, "c": 3}):
+        msg = sample_messages()["status"]
+        msg["outbox_lanes"] = lanes
+        try:
+            ours.validate(msg)
+            accepted = True
+        except WireError as exc:
+            accepted = False
+            assert "$.outbox_lanes" in exc.reason
+        assert accepted == oracle.is_valid(msg) == (1 <= len(lanes) <= 2)

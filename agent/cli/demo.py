@@ -44,6 +44,8 @@ INVENTED_BANNER = ("INVENTED DATA: a made-up demo street, not measurements of an
 VM_BINARY = Path("/usr/bin/victoria-metrics")
 MOSQUITTO_HINT = ("mosquitto not found: install Debian's mosquitto package "
                   "(sudo apt-get install mosquitto) and run halfcycle demo again")
+#: The folder holding this process's ``agent`` package.
+PACKAGE_ROOT = Path(__file__).resolve().parents[2]
 ROLES = ("solar", "leg_loss", "lost_power", "interruption", "plain")
 OPTIONAL_ROLE_KEYS = {"other_leg_pu"}
 
@@ -256,13 +258,19 @@ class DemoRun:
     homes_run: list[HomeProc] = field(default_factory=list)
     #: UTC time the simulated signal ended: agents going offline after it stopped as planned.
     stopped_after: float | None = None
+    #: Every home ran and its outbox drained.
+    complete: bool = False
 
     def _spawn(self, argv: list[str], log: str, **kw: Any) -> subprocess.Popen[Any]:
         logs = self.root / "logs"
         logs.mkdir(exist_ok=True)
+        # Children import the same halfcycle as this process, whatever else is installed.
+        env = dict(os.environ)
+        env["PYTHONPATH"] = os.pathsep.join(
+            [str(PACKAGE_ROOT), *filter(None, [env.get("PYTHONPATH")])])
         with (logs / log).open("ab") as err:
             proc: subprocess.Popen[Any] = subprocess.Popen(
-                argv, stderr=err, cwd=self.root, **kw)
+                argv, stderr=err, cwd=self.root, env=env, **kw)
         self.procs.append(proc)
         return proc
 
@@ -448,6 +456,7 @@ class DemoRun:
         self.homes_run = homes
         pending = {h.device: (h.result or {}).get("outbox_pending") for h in homes}
         undrained = {d: n for d, n in pending.items() if n != 0}
+        self.complete = not undrained
         if undrained:
             self.notes.append(f"outboxes NOT drained: {undrained} (kept in each home's "
                               "state/outbox.sqlite)")
@@ -544,7 +553,7 @@ class DemoRun:
                       for h in self.homes_run],
             "seconds": self.seconds, "speed": self.speed, "dir": str(self.root),
             "timings_s": {k: round(v, 2) for k, v in self.timings.items()},
-            "notes": self.notes,
+            "notes": self.notes, "complete": self.complete,
         }
         return report
 
@@ -606,11 +615,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from agent import logs
 
     logs.configure("error")  # the collector thread logs here; keep the terminal readable
+    run = DemoRun(root, args.homes, args.seconds, args.speed, say)
     try:
-        report = DemoRun(root, args.homes, args.seconds, args.speed, say).run()
+        report = run.run()
     finally:
-        if not keep:
+        if not keep and run.complete:
             shutil.rmtree(root, ignore_errors=True)
+        elif not keep:  # something did not finish: keep the evidence (outboxes, logs)
+            say(f"incomplete run: everything kept in {root}")
     if args.json:
         from agent.cli.report import _json_safe
 
@@ -626,7 +638,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         sys.stdout.write(f"demo took {t.get('total_s', 0):.1f} s"
                          + (f"; files kept in {root}\n" if keep else "\n"))
         sys.stdout.write(INVENTED_BANNER + "\n")
-    return 0
+    return 0 if run.complete else 1
 
 
 def _home_main(argv: list[str]) -> int:

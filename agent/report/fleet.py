@@ -515,13 +515,19 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
             "homes": fe.homes, "homes_monitored": homes,
             "share": round(fe.homes / homes, 4) if homes else None,
             "devices": list(fe.devices), "sites": list(fe.sites), "feeder": fe.feeder,
+            "homes_on_feeder": (sum(1 for sec in sections if sec["feeder"] == fe.feeder)
+                                if fe.feeder else None),
             "worst_level_pu": _num(fe.level_pu), "worst_device": fe.worst.device,
             "longest_s": _num(max((e.duration_s or 0.0) for e in fe.events), 4),
             "spread_s": _num(max(e.start_utc for e in fe.events) - fe.start_utc, 4),
             "event_ids": [e.event_id for e in fe.events],
         })
     temporal = aggregate_temporal(fleet, window_s=temporal_window_s)
-    per_home = aggregate_temporal(records, window_s=temporal_window_s, key=lambda e: e.device)
+    # Per home, sags (dips, interruptions) and swells aggregate separately, so a swell in the
+    # same minute as a deeper sag still counts for SARFI-110+ (common practice).
+    per_home = aggregate_temporal(
+        records, window_s=temporal_window_s,
+        key=lambda e: f"{e.device}/{'swell' if e.kind == 'swell' else 'sag'}")
     sarfi_out: dict[str, Any] = {"homes_monitored": homes}
     if homes:
         result = sarfi([a.representative for a in per_home], homes, REPORT_SARFI)
@@ -583,6 +589,12 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
     return out
 
 
+def _names(devices: Sequence[str], most: int = 6) -> str:
+    """Device names for a table cell; a long list is cut (the JSON report has them all)."""
+    shown = ", ".join(devices[:most])
+    return shown if len(devices) <= most else f"{shown} ... (+{len(devices) - most} more)"
+
+
 def _pu(x: float | None) -> str | None:
     return None if x is None else f"{x:.3f}"
 
@@ -605,16 +617,19 @@ def render_text(report: Mapping[str, Any]) -> str:
                  "transmission) ==")
     if report["fleet_events"]:
         lines += _table(
-            ("start (UTC)", "kind", "homes", "worst pu", "longest s", "spread s", "devices"),
+            ("start (UTC)", "kind", "homes", "feeder", "worst pu", "longest s", "spread s",
+             "devices"),
             [(f["start"], "+".join(f["kinds"]), f"{f['homes']}/{f['homes_monitored']}",
-              _pu(f["worst_level_pu"]), f["longest_s"], f["spread_s"], ", ".join(f["devices"]))
+              None if not f["feeder"] else f"{f['feeder']} ({f['homes']}/{f['homes_on_feeder']})",
+              _pu(f["worst_level_pu"]), f["longest_s"], f["spread_s"], _names(f["devices"]))
              for f in report["fleet_events"]])
     else:
         lines.append("none: no event started on two or more homes together")
     ta = report["temporal_aggregates"]
-    lines.append(f"IEEE 1564 temporal aggregation ({ta['window_s']:.0f} s): {ta['fleet_events']} "
-                 f"fleet events -> {ta['fleet_aggregates']} aggregates; {ta['per_home_events']} "
-                 f"home events -> {ta['per_home_aggregates']} counted for SARFI")
+    lines += [f"IEEE 1564 temporal aggregation ({ta['window_s']:.0f} s): {ta['fleet_events']} "
+              f"fleet events -> {ta['fleet_aggregates']} aggregates;",
+              f"  {ta['per_home_events']} home events -> {ta['per_home_aggregates']} counted "
+              "for SARFI (sags and swells aggregated apart)"]
     lines.append("")
 
     lines.append("== How many homes saw sags, swells and curve violations (IEEE 1564 SARFI) ==")
@@ -648,39 +663,41 @@ def render_text(report: Mapping[str, Any]) -> str:
         ))
     lines += _table(("home", "max swell pu", "s mean>1.10", "s peak>1.10", "10-min>1.10",
                      "highest per day"), rows)
-    lines.append("1.10 pu: EN 50549-1 10-min mean trip level (from memory); 10-min column: "
-                 "moving means above / full windows available")
+    lines += ["1.10 pu: EN 50549-1 10-min mean trip level (from memory). 10-min column: means",
+              "  above 1.10 pu / 10-min means available (stored, else moving means)."]
     lines.append("")
 
     lines.append("== Service voltage compliance ==")
     rows = []
     for d in report["devices"]:
         c = d.get("compliance")
+        nominal = d.get("nominal_v")
+        name = None if nominal is None else f"{nominal:g} ({d['nominal_source']})"
         if c is None:
-            nominal = d.get("nominal_v")
-            rows.append((d["device"],
-                         None if nominal is None else f"{nominal:g} ({d['nominal_source']})",
-                         d.get("measurement_point"), None, "no trend or 10-min data", None,
-                         None))
+            rows.append((d["device"], name, d.get("measurement_point"), "no data", None, None,
+                         None, None))
             continue
-        if c["standard"] == "ANSI C84.1":
-            a = c["range_a"]
-            rows.append((d["device"], f"{d['nominal_v']:g} ({d['nominal_source']})",
-                         c["point"], c["rule"], c["summary"],
-                         f"{a['time_below_s']:.0f}/{a['time_above_s']:.0f}",
-                         f"{a['worst_low_v']:.1f}/{a['worst_high_v']:.1f}"
-                         if a["worst_low_v"] is not None else None))
-        else:
-            b = c["band"]
-            rows.append((d["device"], f"{d['nominal_v']:g} ({d['nominal_source']})",
-                         d.get("measurement_point"), c["rule"], c["summary"],
-                         f"{b['time_below_s']:.0f}/{b['time_above_s']:.0f}",
-                         f"{b['worst_low_v']:.1f}/{b['worst_high_v']:.1f}"
-                         if b["worst_low_v"] is not None else None))
-    lines += _table(("home", "nominal V", "point", "rule", "result", "s below/above",
-                     "worst low/high V"), rows)
-    lines.append("ANSI C84.1 Range A service limits: public summaries; utilization and Range B "
-                 "limits: from memory. Seconds flagged by an RMS event are not judged.")
+        ansi = c["standard"] == "ANSI C84.1"
+        r = c["range_a"] if ansi else c["band"]
+        verdict = (c["verdict"].replace("_", " ") if ansi
+                   else {True: "pass", False: "fail", None: "no data"}[c["passed"]]
+                   + ("" if c["complete_week"] else " (provisional)"))
+        rows.append((
+            d["device"], name, d.get("measurement_point"), verdict,
+            None if r["fraction_inside"] is None else f"{100 * r['fraction_inside']:.1f} %",
+            f"{r['low_v']:.1f}-{r['high_v']:.1f} V",
+            f"{r['time_below_s']:.0f}/{r['time_above_s']:.0f}",
+            f"{r['worst_low_v']:.1f}/{r['worst_high_v']:.1f}"
+            if r["worst_low_v"] is not None else None))
+    lines += _table(("home", "nominal V", "point", "verdict", "inside", "limits",
+                     "s below/above", "worst low/high V"), rows)
+    lines += [
+        "ANSI C84.1 (60-Hz homes): 'inside' = share of per-second (or 10-min) means within",
+        "  Range A; verdict range a / range b / outside b. Range A service limits: public",
+        "  summaries; utilization and Range B limits: from memory.",
+        "EN 50160 (50-Hz homes): 10-min means within Un +-10 % for 95 % of a week, all within",
+        "  +10/-15 %; provisional until a full week (1008 means).",
+        "Values flagged by an RMS event are not judged."]
     lines.append("")
 
     lines.append("== Units out of range, offline or without power (property managers) ==")

@@ -107,8 +107,8 @@ def unpack_bits(data: bytes, count: int, width: int) -> npt.NDArray[np.uint64]:
     _check_stream(data, count, width)
     if width == 0 or count == 0:
         return np.zeros(count, dtype=np.uint64)
-    one = np.ones((1, 1), dtype=np.int64)
-    return _gather_bits(bytes(data), 0 * one, width * one, count)[0].astype(np.uint64)
+    start, bits = np.zeros((1, 1), dtype=np.int64), np.full((1, 1), width, dtype=np.int64)
+    return _gather_bits(bytes(data), start, bits, count)[0].astype(np.uint64)
 
 
 def pack_mask(missing: BOOL) -> bytes:

@@ -3,7 +3,8 @@
 The JSON Schemas are the single source of truth; this module compiles the subset of JSON
 Schema draft 2020-12 they use into closures once, then checks each message without a
 general-purpose schema engine. Supported keywords: ``type``, ``const``, ``enum``,
-``required``, ``properties``, ``additionalProperties``, ``propertyNames``, ``items``,
+``required``, ``properties``, ``additionalProperties``, ``propertyNames``,
+``minProperties``, ``maxProperties``, ``items``,
 ``prefixItems``, ``minItems``, ``maxItems``, ``minLength``, ``maxLength``, ``pattern``,
 ``minimum``, ``maximum``, ``exclusiveMinimum``, ``exclusiveMaximum``, ``oneOf``, ``not`` and
 local ``$ref`` (``#/$defs/...``). A schema using anything else fails at load time, so the
@@ -21,6 +22,15 @@ Deliberately stricter than a general validator:
   per-channel lists match ``channels``; event and capture fields agree with each other.
 
 Unknown ``v`` is rejected before schema validation with code ``unknown_version``.
+
+Speed (the collector validates every message): each schema compiles twice, to a full check
+that names the path and reason of the first problem, and to a yes/no predicate with the
+same acceptance that builds no paths and raises nothing (common node shapes fuse into one
+closure). A valid message costs one predicate pass; only a rejected one runs the full check
+for its reason. Packed per-second arrays get a few scalar header checks; their values are
+checked without decoding when ``first`` and the largest possible drift of ``width``-bit
+deltas prove them in range, else all arrays of a summary are decoded and checked in one
+numpy pass. The array-by-array check runs only to name the array of a rejection.
 """
 
 from __future__ import annotations
@@ -58,7 +68,8 @@ _ANNOTATIONS = frozenset({
 })
 _SUPPORTED = frozenset({
     "type", "const", "enum", "required", "properties", "additionalProperties",
-    "propertyNames", "items", "prefixItems", "minItems", "maxItems", "minLength", "maxLength",
+    "propertyNames", "minProperties", "maxProperties", "items", "prefixItems", "minItems",
+    "maxItems", "minLength", "maxLength",
     "pattern", "minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum", "oneOf", "not",
     "$ref",
 })
@@ -308,6 +319,19 @@ class _Compiler:
         if any(k in node for k in ("required", "properties", "additionalProperties",
                                    "propertyNames")):
             checks.append(self._object(node))
+
+        if "minProperties" in node or "maxProperties" in node:
+            fewest = int(node.get("minProperties", 0))
+            most = node.get("maxProperties")
+
+            def size_check(x: Any, p: str) -> None:
+                if not isinstance(x, dict):
+                    return
+                if len(x) < fewest:
+                    raise _fail(p, f"{len(x)} properties, at least {fewest} required")
+                if most is not None and len(x) > most:
+                    raise _fail(p, f"{len(x)} properties, at most {most} allowed", "oversized")
+            checks.append(size_check)
 
         if "oneOf" in node:
             branches = [self.compile(b) for b in node["oneOf"]]
@@ -572,6 +596,11 @@ class _Compiler:
         if any(k in node for k in ("required", "properties", "additionalProperties",
                                    "propertyNames")):
             tests.append(self._object_pred(node))
+
+        if "minProperties" in node or "maxProperties" in node:
+            fewest = int(node.get("minProperties", 0))
+            most = node.get("maxProperties", math.inf)
+            tests.append(lambda x: not isinstance(x, dict) or fewest <= len(x) <= most)
 
         if "oneOf" in node:
             branches = [self.predicate(b) for b in node["oneOf"]]
@@ -843,7 +872,7 @@ def _semantic_summary_fast(msg: dict[str, Any], schema: dict[str, Any], *,
                 span = value_span(n, width)
                 lo, hi = first - span, first + span
                 # Float rounding is monotonic, so the bound's products bound every value's.
-                proven = (INT32_MIN <= lo and hi <= INT32_MAX and lo * limits[0] >= limits[1]
+                proven = (lo >= INT32_MIN and hi <= INT32_MAX and lo * limits[0] >= limits[1]
                           and hi * limits[0] <= limits[2])
             arrays.append(packed)
             bounds.append(limits)
