@@ -60,7 +60,11 @@ def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
     """A store URL on a real SQLite file or in a fresh PostgreSQL schema."""
     if request.param == "sqlite":
         return f"sqlite:///{tmp_path / 'recorder.db'}"
-    base: str = request.getfixturevalue("pg_database")
+    return schema_url(request.getfixturevalue("pg_database"))
+
+
+def schema_url(base: str) -> str:
+    """A URL into a fresh schema of the test database ``base`` (isolates one test)."""
     import psycopg
 
     schema = f"t_{uuid.uuid4().hex[:12]}"

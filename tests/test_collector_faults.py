@@ -10,13 +10,11 @@ from __future__ import annotations
 import hashlib
 import signal
 import time
-import uuid
 from pathlib import Path
-from urllib.parse import quote, urlsplit, urlunsplit
 
 from _fleet_helpers import CollectorThread, Fleet, make_fleet
 from _mqtt_helpers import wait_for
-from _store_helpers import pg_database
+from _store_helpers import pg_database, schema_url
 
 from agent.store.recorder import RecorderStore
 
@@ -98,19 +96,8 @@ def test_broker_sigkill_messages_are_resent_and_committed(tmp_path: Path) -> Non
         fleet.stop_all()
 
 
-def _schema_url(base: str) -> str:
-    import psycopg
-
-    schema = f"t_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(base, autocommit=True) as conn:
-        conn.execute(f'CREATE SCHEMA "{schema}"')
-    parts = urlsplit(base)
-    return urlunsplit((parts.scheme, parts.netloc, parts.path,
-                       "options=" + quote(f"-csearch_path={schema}"), ""))
-
-
 def test_two_collectors_share_the_load_on_postgresql(tmp_path: Path, pg_database: str) -> None:
-    url = _schema_url(pg_database)
+    url = schema_url(pg_database)
     fleet = make_fleet(tmp_path, 4, duration=20.0, summary=2)
     try:
         RecorderStore(url, tmp_path / "captures").close()  # migrate once before both start

@@ -14,7 +14,7 @@ from pathlib import Path
 import comtrade
 import numpy as np
 import pytest
-from _mqtt_helpers import make_broker
+from _fleet_helpers import make_fleet
 from _tsdb_helpers import VictoriaMetrics, sample_count, victoria_metrics
 
 from agent.cli.main import main
@@ -22,81 +22,6 @@ from agent.collect.service import Collector, load_collector_settings
 from agent.publish.edge import EdgeResult, run_edge
 from agent.settings import load_edge_settings
 from agent.store.recorder import RecorderStore
-
-SCENARIO = """
-# INVENTED scenario: one home on an imaginary 230 V feeder.
-[scenario]
-name = "{device}"
-seed = {seed}
-duration_s = 12.0
-sample_rate = 3840.0
-block_samples = 3840
-[mains]
-nominal_v = 230.0
-nominal_hz = 50.0
-[adc]
-bits = 16
-full_scale_v = 500.0
-noise_lsb = 0.5
-# A feeder-wide dip: every home sees 55 % for 150 ms at 4 s.
-[[events]]
-kind = "dip"
-start_s = 4.0
-duration_s = 0.15
-level_pu = 0.55
-{extra}
-"""
-
-SWELL = """
-# Only this home: an invented inverter swell to 115 % for 0.8 s.
-[[events]]
-kind = "swell"
-start_s = 8.0
-duration_s = 0.8
-level_pu = 1.15
-"""
-
-EDGE = """
-[site]
-site = "invented-street"
-device = "{device}"
-nominal_v = 230.0
-nominal_hz = 50.0
-service_type = "1ph"
-channels = ["L1"]
-[source]
-kind = "sim"
-scenario = "scenario.toml"
-[state]
-dir = "state"
-[summary]
-seconds = 5
-[mqtt]
-host = "127.0.0.1"
-port = {port}
-tls = false
-password_file = "password"
-keepalive_s = 5
-ack_timeout_s = 2.0
-reconnect_min_s = 0.2
-reconnect_max_s = 1.0
-"""
-
-COLLECTOR = """
-[collector]
-id = "collector-1"
-group = "recorders"
-[store]
-url = "sqlite:///recorder.db"
-captures_dir = "captures"
-[mqtt]
-host = "127.0.0.1"
-port = {port}
-tls = false
-username = "collector"
-password_file = "password"
-keepalive_s = 5
-"""
 
 EXPORT = """
 [export]
@@ -113,26 +38,13 @@ __all__ = ["victoria_metrics"]  # the fixture, imported for pytest
 
 @pytest.fixture
 def fleet(tmp_path: Path, victoria_metrics: VictoriaMetrics):
-    broker = make_broker(tmp_path)
-    for d in DEVICES:
-        broker.add_device(d)
-    broker.start()
-    cdir = tmp_path / "collector"
-    cdir.mkdir()
-    (cdir / "password").write_text(broker.collector_password)
-    (cdir / "collector.toml").write_text(
-        COLLECTOR.format(port=broker.port) + EXPORT.format(url=victoria_metrics.url))
-    configs = []
-    for i, d in enumerate(DEVICES):
-        ddir = tmp_path / d
-        ddir.mkdir()
-        (ddir / "password").write_text(broker.devices[d])
-        extra = SWELL if d == "home-3" else ""
-        (ddir / "scenario.toml").write_text(SCENARIO.format(device=d, seed=i + 1, extra=extra))
-        (ddir / "edge.toml").write_text(EDGE.format(device=d, port=broker.port))
-        configs.append(ddir / "edge.toml")
-    yield victoria_metrics, cdir / "collector.toml", configs
-    broker.stop()
+    """Three invented homes: a feeder-wide dip (55 % for 150 ms at 4 s) at every home and an
+    inverter swell (115 % for 0.8 s at 8 s) at home-3 only; see tests/_fleet_helpers.py."""
+    f = make_fleet(tmp_path, len(DEVICES), duration=12.0, summary=5)
+    assert tuple(f.devices) == DEVICES
+    cfg = f.collector_config(extra=EXPORT.format(url=victoria_metrics.url))
+    yield victoria_metrics, cfg, [f.edge_configs[d] for d in DEVICES]
+    f.stop_all()
 
 
 def _run_agents(configs: list[Path]) -> list[EdgeResult]:

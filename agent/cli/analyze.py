@@ -16,9 +16,9 @@ from agent.acquisition.timebase import ReplayTimebase
 from agent.cli.main import UserError
 from agent.events.types import Thresholds
 from agent.pipeline import edge_stages, run
-from agent.report.analysis import AnalysisCollector, infer_frequency, infer_nominal, render_table
+from agent.report.analysis import AnalysisCollector, infer_frequency, render_table
 from agent.resources import examples_dir
-from agent.site import Site
+from agent.site import Site, infer_nominal
 
 # The bundled recording of an invented scenario (see agent/examples/README.md).
 EXAMPLE_FILE = "invented-street.wav"

@@ -11,15 +11,6 @@ import numpy as np
 from agent.events.types import Event
 from agent.pipeline import Frame
 
-# Declared supply voltages in use around the world [V, line-to-neutral] (IEC 60038 and
-# ANSI C84.1 nominal systems); used only when the user gives no --nominal.
-STANDARD_NOMINALS = (100.0, 110.0, 115.0, 120.0, 127.0, 220.0, 230.0, 240.0, 277.0)
-
-
-def infer_nominal(rms_v: float) -> float:
-    """Nearest standard nominal voltage to a measured steady RMS value [V]."""
-    return min(STANDARD_NOMINALS, key=lambda n: abs(math.log(rms_v / n)))
-
 
 def infer_frequency(volts: np.ndarray, rate: float) -> float:
     """50 or 60 [Hz], whichever the spectrum's strongest low-frequency line is closer to."""

@@ -24,7 +24,6 @@ curve (2000).
 
 from __future__ import annotations
 
-import base64
 import math
 import time
 from collections.abc import Mapping, Sequence
@@ -52,6 +51,8 @@ from agent.report.compliance import (
     summarise,
     ten_minute_means,
 )
+from agent.site import infer_nominal
+from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore, from_json
 from agent.wire.codec import summary_arrays
 from agent.wire.records import FLAG_EVENT
@@ -69,26 +70,6 @@ SILENT_AFTER_S = 900.0
 TEN_MIN_FULL_COUNT = 2900
 
 
-#: Declared supply voltages in use [V, line to neutral] (IEC 60038 and ANSI C84.1 nominal
-#: systems), for a home whose store records no nominal. (The same list as
-#: agent.report.analysis, kept here so a report does not import the measurement chain.)
-STANDARD_NOMINALS = (100.0, 110.0, 115.0, 120.0, 127.0, 220.0, 230.0, 240.0, 277.0)
-
-
-def infer_nominal(rms_v: float) -> float:
-    """Nearest standard nominal voltage to a median RMS value [V] (log distance)."""
-    return min(STANDARD_NOMINALS, key=lambda n: abs(math.log(rms_v / n)))
-
-
-def _from_stored_json(value: Any) -> Any:
-    """Undo the store's JSON form of bytes (``{"$base64": ...}``)."""
-    if isinstance(value, dict):
-        if set(value) == {"$base64"}:
-            return base64.b64decode(value["$base64"])
-        return {k: _from_stored_json(v) for k, v in value.items()}
-    if isinstance(value, list):
-        return [_from_stored_json(v) for v in value]
-    return value
 
 
 def _num(x: Any, nd: int = 4) -> float | None:
@@ -133,7 +114,7 @@ class _Trend:
 
     def add(self, payload: Any) -> None:
         try:
-            a = summary_arrays(_from_stored_json(payload))
+            a = summary_arrays(from_stored_json(payload))
         except (KeyError, TypeError, ValueError, IndexError):
             self.errors += 1  # counted and shown; one bad row does not hide the rest
             return

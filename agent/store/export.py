@@ -334,14 +334,14 @@ def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[L
     return out
 
 
-def _from_stored_json(value: Any) -> Any:
+def from_stored_json(value: Any) -> Any:
     """Undo the recorder store's JSON form of bytes (``{"$base64": ...}``)."""
     if isinstance(value, Mapping):
         if set(value) == {"$base64"}:
             return base64.b64decode(value["$base64"])
-        return {k: _from_stored_json(v) for k, v in value.items()}
+        return {k: from_stored_json(v) for k, v in value.items()}
     if isinstance(value, list):
-        return [_from_stored_json(v) for v in value]
+        return [from_stored_json(v) for v in value]
     return value
 
 
@@ -357,7 +357,7 @@ def summary_points(payload: Mapping[str, Any], precision: Precision) -> list[Lin
     for key in ("t0", "period_s", "n"):
         _number(_req(payload, key, kind), key, kind)
     try:
-        arrays = summary_arrays(_from_stored_json(payload))
+        arrays = summary_arrays(from_stored_json(payload))
     except (WireError, KeyError, TypeError, ValueError, IndexError) as exc:
         raise PayloadError(kind, f"summary arrays do not decode: {exc}") from None
     out: list[LinePoint] = []
