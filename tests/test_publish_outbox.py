@@ -229,3 +229,18 @@ def test_foreign_file_is_a_clear_error_and_left_alone(tmp_path: Path) -> None:
     with pytest.raises(OutboxError, match="cannot use as an outbox"):
         Outbox(path, "dev-a", SITE)
     assert path.read_bytes().startswith(b"this is not")  # nothing overwritten
+
+
+def test_failed_payload_rolls_back_the_whole_batch(tmp_path: Path) -> None:
+    ob = _open(tmp_path)
+    ob.put(BULK, b"first")
+
+    def broken(mid: object) -> bytes:
+        raise ValueError("encoder failed")
+
+    with pytest.raises(ValueError):
+        ob.put_many([(BULK, b"ok", Lane.BULK), (BULK, broken, Lane.BULK)])
+    with pytest.raises(OutboxError):
+        ob.put(BULK, lambda mid: "not bytes")  # type: ignore[arg-type,return-value]
+    # nothing half-written, and no sequence number burnt: the next message is seq 2
+    assert ob.pending_count() == 1 and ob.put(BULK, b"second").seq == 2
