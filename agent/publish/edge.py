@@ -36,7 +36,7 @@ from agent.settings import EdgeSettings
 from agent.site import Site
 from agent.wire import codec
 from agent.wire.errors import WireError
-from agent.wire.records import FLAG_BITS, SummaryBatcher, per_second
+from agent.wire.records import FLAG_BITS, SummaryBatcher, default_rms_exponent, per_second
 
 log = structlog.get_logger("halfcycle.edge")
 
@@ -191,7 +191,11 @@ class EdgeSink:
         self.info = info
         self.timebase = timebase
         self.identity = codec.Identity(site=site.site_id, device=site.device_id, epoch=outbox.epoch)
-        self.batcher = SummaryBatcher(info.channel_names, k=summary_seconds)
+        self.batcher = SummaryBatcher(
+            info.channel_names,
+            k=summary_seconds,
+            exponents={"rms": default_rms_exponent(info.channels)},
+        )
         self.seconds = SecondAccumulator(timebase, info.channels)
         self.max_packet = max_packet_bytes
         self.heartbeat_s = heartbeat_s
