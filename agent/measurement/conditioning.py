@@ -187,18 +187,39 @@ class IntegerBoxcarCascade:
         """Factor from the sums to the moving averages [1/samples]."""
         self._tails: list[npt.NDArray[np.int64]] = [
             np.zeros((length - 1, channels), np.int64) for length in lengths]
+        self._sums_tail: npt.NDArray[np.int64] | None = None
 
     def process(self, x: npt.NDArray[np.integer]) -> npt.NDArray[np.int64]:
         """Moving sums [count · samples^k] of ``x`` (n, channels), continuing the last call."""
+        return self._stages(x, 0)
+
+    def process_running_sums(self, sums: npt.NDArray[np.int64]) -> npt.NDArray[np.int64]:
+        """:meth:`process` of the block whose running sums are ``sums`` (n+1, channels):
+        row k = sum of all samples before block row k (int64, may wrap around).
+
+        The first boxcar is then one difference of running sums. Do not mix with
+        :meth:`process` on the same instance.
+        """
+        length = self.lengths[0]
+        if self._sums_tail is None:           # nothing before: the sums were flat
+            self._sums_tail = np.repeat(sums[:1], length - 1, axis=0)
+        ext = np.concatenate([self._sums_tail, sums])
+        n = sums.shape[0] - 1
+        self._sums_tail = ext[n:n + length - 1]
+        return self._stages(ext[length:] - ext[:n], 1)
+
+    def _stages(self, x: npt.NDArray[np.integer], first: int) -> npt.NDArray[np.int64]:
         y: npt.NDArray[np.integer] = x
         for i, length in enumerate(self.lengths):
+            if i < first:
+                continue
             # z = [0, tail, y] accumulated: row j + length - z row j is the sum of `length` rows.
             z = np.empty((y.shape[0] + length, y.shape[1]), np.int64)
             z[0] = 0
             z[1:length] = self._tails[i]
             z[length:] = y
             tail = z[z.shape[0] - (length - 1):].copy()
-            np.cumsum(z[1:], axis=0, out=z[1:])
+            z[1:].cumsum(axis=0, out=z[1:])
             y = z[length:] - z[:-length]
             self._tails[i] = tail
         return np.asarray(y, dtype=np.int64)

@@ -68,7 +68,9 @@ class _Out:
     flags: list[QualityFlag] = field(default_factory=list)
 
     def build(self, channels: int) -> MeasurementOutput:
-        if self.hc:
+        if len(self.hc) == 1:                 # the common case: fresh arrays, no copy
+            hc = HalfCycleRms(*self.hc[0])
+        elif self.hc:
             hc = HalfCycleRms(np.concatenate([h[0] for h in self.hc]),
                               np.concatenate([h[1] for h in self.hc]),
                               np.concatenate([h[2] for h in self.hc]),
@@ -76,7 +78,10 @@ class _Out:
         else:
             hc = HalfCycleRms(np.zeros(0), np.zeros(0), np.zeros((0, channels)),
                               np.zeros(0, bool))
-        if self.iv:
+        if len(self.iv) == 1:
+            r = self.iv[0]
+            iv = BasicIntervals(r[0], r[1], r[2], r[3], r[4], r[5], r[6].astype(bool, copy=False))
+        elif self.iv:
             cols = [np.concatenate([r[i] for r in self.iv]) for i in range(7)]
             iv = BasicIntervals(cols[0], cols[1], cols[2], cols[3], cols[4], cols[5],
                                 cols[6].astype(bool))
@@ -85,6 +90,15 @@ class _Out:
                                 np.zeros((0, channels)), np.zeros(0), np.zeros(0),
                                 np.zeros(0, bool))
         return MeasurementOutput(hc, iv, self.aggregates, self.flags)
+
+
+def _median_of_rows(x: F64) -> F64:
+    """np.median(x, axis=0) for finite x (the same values), without its first-call cost."""
+    srt = np.sort(x, axis=0)
+    k = x.shape[0]
+    if k % 2:
+        return np.asarray(srt[k // 2])
+    return np.asarray(0.5 * (srt[k // 2 - 1] + srt[k // 2]))
 
 
 class MeasurementEngine:
@@ -137,7 +151,8 @@ class MeasurementEngine:
         # Resample points: enough for a 10/12-cycle window down to 0.9 f0 without decimation.
         self._points = resample_points(math.ceil(self._cycles * fs / (0.9 * f0)))
         self._frac = np.arange(self._points) / self._points
-        self._scale2 = self.scale * self.scale
+        # [V/count] and [V²/count²], to scale the integrals of counts and of counts².
+        self._scale_xq = np.stack([self.scale, self.scale * self.scale])[:, None, :]
         chunk = max(1, round(fs / f0))
         self._dc_removal = dc_removal
         # Unbalance needs the legs of one service: split-phase |V1-V2|/Vnom, three-phase u2.
@@ -210,8 +225,7 @@ class MeasurementEngine:
             return out.build(self.channels)
         self._next = start + n
         out.flags.extend(self._quality.update(counts, start))
-        self._append_samples(counts)
-        f = self._casc.process(counts)
+        f = self._casc.process_running_sums(self._append_samples(counts))
         head = self._settle_until - start
         if head > 0:
             f[: min(head, n)] = 0.0
@@ -235,7 +249,7 @@ class MeasurementEngine:
     # ------------------------------------------------------------------ signal chain
     def _reset_signal(self, anchor: int) -> None:
         c = self.channels
-        self._casc = IntegerBoxcarCascade(self._lengths, c)
+        self._casc = IntegerBoxcarCascade(self._lengths, c)   # fed the running sums
         self._delay = self._casc.delay
         self._settle_until = anchor + self._casc.settle
         # The band in the cascade's units (sums of counts) per channel.
@@ -247,10 +261,9 @@ class MeasurementEngine:
         self._horizon = [-math.inf] * c
         self._chain = ChainState(last=None, anchor=anchor + self._delay)
         self._wave = np.zeros((c, 0), np.float32)
-        # Running sums of counts and counts² [count, count²] before each carried row (int64,
-        # exact; they may wrap around, differences stay exact).
-        self._px: I64 = np.zeros((1, c), np.int64)
-        self._pq: I64 = np.zeros((1, c), np.int64)
+        # Running sums of counts [0] and counts² [1] before each carried row, (2, n+1, c)
+        # [count, count²] (int64, exact; they may wrap around, differences stay exact).
+        self._p: I64 = np.zeros((2, 1, c), np.int64)
         self._buf_start = anchor
         self._cx_t = np.zeros(0)
         self._cx_syn = np.zeros(0, bool)
@@ -261,37 +274,32 @@ class MeasurementEngine:
         self._next_win = 0
         self._iv_start = 0
         self._cx_dc = np.zeros((0, c))
-        # Integrals of the samples' interpolant from the buffer origin to each crossing: an
-        # exact integer part (running sum at the crossing's floor) plus a fractional rest.
-        self._cx_px: I64 = np.zeros((0, c), np.int64)
-        self._cx_pq: I64 = np.zeros((0, c), np.int64)
-        self._cx_rx = np.zeros((0, c))
-        self._cx_rq = np.zeros((0, c))
+        # Integrals of the interpolant of the counts [0] and counts² [1] from the origin of
+        # the running sums to each crossing, (2, m, c): an exact integer part (running sum at
+        # the crossing's floor) plus a fractional rest.
+        self._cx_p: I64 = np.zeros((2, 0, c), np.int64)
+        self._cx_r = np.zeros((2, 0, c))
         self._wmean_hist = np.zeros((0, c))
         self._dc_cache: dict[int, F64] = {}
         self._quality.reset()
 
-    def _append_samples(self, counts: npt.NDArray[np.integer]) -> None:
-        """Carry the block: float32 volts for the harmonics, running sums for the RMS."""
+    def _append_samples(self, counts: npt.NDArray[np.integer]) -> I64:
+        """Carry the block: float32 volts for the harmonics, running sums for the RMS.
+        Returns the running sums of the counts for the block's rows (n+1, channels)."""
         n, c = counts.shape
-        wave = counts.T.astype(np.float64, order="C")
-        wave *= self.scale[:, None]
-        wave32 = wave.astype(np.float32)
-        x = counts.astype(np.int64)
-        px = np.empty((n + 1, c), np.int64)
-        pq = np.empty((n + 1, c), np.int64)
-        px[0] = self._px[-1]
-        pq[0] = self._pq[-1]
-        px[1:] = x
-        np.multiply(x, x, out=pq[1:])
-        np.cumsum(px, axis=0, out=px)
-        np.cumsum(pq, axis=0, out=pq)
-        if self._wave.shape[1]:
-            self._wave = np.concatenate([self._wave, wave32], axis=1)
-            self._px = np.concatenate([self._px, px[1:]])
-            self._pq = np.concatenate([self._pq, pq[1:]])
-        else:
-            self._wave, self._px, self._pq = wave32, px, pq
+        old = self._wave.shape[1]
+        wave = np.empty((c, old + n), np.float32)
+        wave[:, :old] = self._wave
+        # Volts in float64, then rounded once to float32.
+        np.multiply(counts.T, self.scale[:, None], out=wave[:, old:], casting="same_kind")
+        p = np.empty((2, old + n + 1, c), np.int64)
+        p[:, :old + 1] = self._p
+        x = p[0, old + 1:]
+        x[...] = counts
+        np.multiply(x, x, out=p[1, old + 1:])
+        p[:, old:].cumsum(axis=1, out=p[:, old:])
+        self._wave, self._p = wave, p
+        return p[0, old:]
 
     def _measured_until(self) -> float:
         n = self._cx_t.shape[0]
@@ -319,9 +327,9 @@ class MeasurementEngine:
         new_t, new_syn = extend_chain(self._cand, self._horizon, self._chain, self._hp,
                                       3.0 * self._hp)
         if new_t.shape[0]:
-            to_utc = self.timebase.to_utc
-            utc = np.array([to_utc(v) for v in new_t.tolist()])
-            px, rx, pq, rq = self._crossing_integrals(new_t)
+            utc = np.fromiter(map(self.timebase.to_utc, new_t.tolist()), np.float64,
+                              new_t.shape[0])
+            whole, rest = self._crossing_integrals(new_t)
             self._cx_t = np.concatenate([self._cx_t, new_t])
             self._cx_syn = np.concatenate([self._cx_syn, new_syn])
             self._cx_utc = np.concatenate([self._cx_utc, utc])
@@ -329,10 +337,8 @@ class MeasurementEngine:
                                            np.floor(utc / TEN_MIN_S).astype(np.int64)])
             self._cx_wflag = np.concatenate([self._cx_wflag, np.zeros(new_t.shape[0], bool)])
             self._cx_dc = np.concatenate([self._cx_dc, np.zeros((new_t.shape[0], self.channels))])
-            self._cx_px = np.concatenate([self._cx_px, px])
-            self._cx_rx = np.concatenate([self._cx_rx, rx])
-            self._cx_pq = np.concatenate([self._cx_pq, pq])
-            self._cx_rq = np.concatenate([self._cx_rq, rq])
+            self._cx_p = np.concatenate([self._cx_p, whole], axis=1)
+            self._cx_r = np.concatenate([self._cx_r, rest], axis=1)
             floor = float(self._chain.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
             for c in range(self.channels):
                 cand = self._cand[c]
@@ -342,40 +348,38 @@ class MeasurementEngine:
         self._emit_intervals(out, final)
         self._trim()
 
-    def _crossing_integrals(self, t_abs: F64) -> tuple[I64, F64, I64, F64]:
-        """Integrals of the piecewise-linear interpolant of the counts x and of x² from the
-        buffer origin to each crossing [count · samples, count² · samples], as an exact
-        integer part (sum over the rows before the crossing's floor) and a float rest.
+    def _crossing_integrals(self, t_abs: F64) -> tuple[I64, F64]:
+        """Integrals of the piecewise-linear interpolant of the counts x [0] and of x² [1]
+        from the origin of the running sums to each crossing [count · samples, count² ·
+        samples], (2, m, channels), as an exact integer part (the running sum at the
+        crossing's floor) and a float rest.
 
         The integral over [a, b] is (int_b - int_a) + (rest_b - rest_a): trapezoid rule
         inside, linear interpolation at the fractional edges (as ``rms.segment_integrals``).
         """
         floor = np.floor(t_abs)
-        rel = floor.astype(np.intp)
-        rel -= self._buf_start
+        rows = floor.astype(np.intp)
+        rows -= self._buf_start
+        rows = rows[:, None] + np.arange(3)  # the floor row, and two more for the samples
         frac = (t_abs - floor)[:, None]
         w1 = frac * frac
         w1 *= 0.5                          # weight of (v1 - v0): integral of the slope
         w0 = frac + 0.5                    # weight of v0 (its half-trapezoid included)
         w0 -= w1
-        out: list[npt.NDArray[np.generic]] = []
-        for prefix in (self._px, self._pq):
-            p0 = prefix[rel]
-            v0 = prefix[rel + 1] - p0      # samples at the floor and the next row, exact
-            v1 = prefix[rel + 2] - prefix[rel + 1]
-            out += [p0, v0 * w0 + v1 * w1]
-        return out[0], out[1], out[2], out[3]  # type: ignore[return-value]
+        p = self._p[:, rows]               # (2, m, 3, channels)
+        d = p[:, :, 1:] - p[:, :, :-1]     # samples at the floor and the next row, exact
+        rest = d[:, :, 0] * w0
+        rest += d[:, :, 1] * w1
+        return p[:, :, 0], rest
 
     def _between(self, lo: npt.NDArray[np.intp] | slice, hi: npt.NDArray[np.intp] | slice
                  ) -> tuple[F64, F64]:
         """Integrals of x² [V² · samples] and x [V · samples] between crossing rows lo, hi."""
-        iq = (self._cx_pq[hi] - self._cx_pq[lo]).astype(np.float64)
-        iq += self._cx_rq[hi]
-        iq -= self._cx_rq[lo]
-        ix = (self._cx_px[hi] - self._cx_px[lo]).astype(np.float64)
-        ix += self._cx_rx[hi]
-        ix -= self._cx_rx[lo]
-        return iq * self._scale2, ix * self.scale
+        d = (self._cx_p[:, hi] - self._cx_p[:, lo]).astype(np.float64)
+        d += self._cx_r[:, hi]
+        d -= self._cx_r[:, lo]
+        d *= self._scale_xq
+        return d[1], d[0]
 
     def _emit_windows(self, out: _Out) -> None:
         base = self._cx_base
@@ -398,7 +402,7 @@ class MeasurementEngine:
         syn = self._cx_syn
         synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
         synthetic |= syn[lo + 2:hi + 2]
-        flagged = np.any((urms < self._dip_v) | (urms > self._swell_v), axis=1)
+        flagged = np.asarray(((urms < self._dip_v) | (urms > self._swell_v)).any(axis=1))
         self._cx_wflag[lo:hi] = flagged
         out.hc.append((a.copy(), b.copy(), urms, synthetic))
         self._feed_freq(out, self._cx_utc[lo:hi], synthetic, flagged)
@@ -420,24 +424,28 @@ class MeasurementEngine:
         cache = self._dc_cache
         todo = [g for g in range(max(g_first, history), k1, group) if g not in cache]
         if todo:                    # the common case: full histories, one vectorised median
-            idx = np.array(todo)[:, None] - first + np.arange(-history, 0)[None, :]
-            srt = np.sort(allm[idx], axis=1)
-            est = 0.5 * (srt[:, (history - 1) // 2] + srt[:, history // 2])
+            lo = np.array(todo) - (first + history)
+            idx = lo[:, None] + np.arange(history)[None, :]
+            srt = allm.T[:, idx]                                  # (channels, groups, H)
+            srt.sort(axis=-1)
+            est = 0.5 * (srt[:, :, (history - 1) // 2] + srt[:, :, history // 2])
             for j, g in enumerate(todo):
-                cache[g] = est[j]
+                cache[g] = est[:, j]
         for g in range(g_first, min(history, k1), group):    # just after a start
             if g not in cache:
                 cache[g] = (np.zeros(self.channels) if g == 0
-                            else np.median(allm[-first:g - first], axis=0))
-        groups = list(range(g_first, k1, group))
+                            else _median_of_rows(allm[-first:g - first]))
+        groups = range(g_first, k1, group)
         for g in [g for g in cache if g < g_first]:
             del cache[g]
         self._wmean_hist = allm[-(history + group):]
         if len(groups) == 1:
-            return np.broadcast_to(cache[g_first], mean.shape).copy()
-        edges = np.clip(np.array(groups[1:]) - k0, 0, mean.shape[0])
-        reps = np.diff(edges, prepend=0, append=mean.shape[0])
-        return np.repeat(np.array([cache[g] for g in groups]), reps, axis=0)
+            dc = np.empty(mean.shape)
+            dc[...] = cache[g_first]
+            return dc
+        # Rows per group: from its start (or k0) to the next group's start (or k1).
+        reps = [min(g + group, k1) - max(g, k0) for g in groups]
+        return np.array([cache[g] for g in groups]).repeat(reps, axis=0)
 
     def _find_intervals(self, final: bool) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
         """Basic intervals that became complete: first crossing (global index) and cycles."""
@@ -511,7 +519,7 @@ class MeasurementEngine:
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)
         # Windows i0-1 .. i1-1 overlap the interval [crossing i0, crossing i1].
-        wcs = np.concatenate([[0], np.cumsum(self._cx_wflag)])
+        wcs = np.concatenate([[0], self._cx_wflag.cumsum()])
         flagged = (wcs[i1s] - wcs[np.maximum(i0s - 1, 0)]) > 0
         out.iv.append((s, e, rms, thd, imb, hz, flagged))
         utc0 = self._cx_utc[i0s].tolist()
@@ -533,10 +541,8 @@ class MeasurementEngine:
             self._cx_p10 = self._cx_p10[drop:]
             self._cx_wflag = self._cx_wflag[drop:]
             self._cx_dc = self._cx_dc[drop:]
-            self._cx_px = self._cx_px[drop:]
-            self._cx_rx = self._cx_rx[drop:]
-            self._cx_pq = self._cx_pq[drop:]
-            self._cx_rq = self._cx_rq[drop:]
+            self._cx_p = self._cx_p[:, drop:]
+            self._cx_r = self._cx_r[:, drop:]
             self._cx_base = keep_cx
         if self._cx_t.shape[0]:
             need = min(self._iv_start, self._next_win) - self._cx_base
@@ -547,8 +553,7 @@ class MeasurementEngine:
         cut = min(keep_sample - self._buf_start, self._wave.shape[1])
         if cut > 0:
             self._wave = self._wave[:, cut:]
-            self._px = self._px[cut:]
-            self._pq = self._pq[cut:]
+            self._p = self._p[:, cut:]
             self._buf_start += cut
 
     def _flush_signal(self, out: _Out) -> None:
@@ -602,15 +607,19 @@ class MeasurementEngine:
         if utc.shape[0] == 0:
             return
         per = np.floor(utc / FREQ_INTERVAL_S).astype(np.int64)
-        cuts = np.flatnonzero(np.diff(per)) + 1
-        for idx in np.split(np.arange(utc.shape[0]), cuts):
-            p = int(per[idx[0]])
+        if per[0] == per[-1] and (per == per[0]).all():
+            parts: list[slice | npt.NDArray[np.intp]] = [slice(None)]
+        else:
+            cuts = np.flatnonzero(np.diff(per)) + 1
+            parts = list(np.split(np.arange(utc.shape[0]), cuts))
+        for idx in parts:
+            p = int(per[idx][0])
             if self._f_period is not None and p != self._f_period:
                 self._emit_freq(out)
             self._f_period = p
             self._f_utc.extend(utc[idx].tolist())
             self._f_syn.extend(syn[idx].tolist())
-            self._f_flag = self._f_flag or bool(np.any(flagged[idx]) or np.any(syn[idx]))
+            self._f_flag = self._f_flag or bool(flagged[idx].any() or syn[idx].any())
 
     def _emit_freq(self, out: _Out) -> None:
         if self._f_period is None:

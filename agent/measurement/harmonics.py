@@ -43,11 +43,23 @@ def catmull_rom_rows(rows: npt.NDArray[np.floating], positions: F64
                      ) -> npt.NDArray[np.floating]:
     """:func:`catmull_rom` of channel-major samples ``rows`` (channels, n), computed in
     ``rows.dtype``; the result has shape (channels,) + positions.shape."""
+    return _catmull_rom_rows_in_place(rows, np.array(positions, dtype=np.float64))
+
+
+def _catmull_rom_rows_in_place(rows: npt.NDArray[np.floating], positions: F64,
+                               out: npt.NDArray[np.floating] | None = None
+                               ) -> npt.NDArray[np.floating]:
+    """:func:`catmull_rom_rows`, using ``positions`` (float64) as scratch space; ``out``
+    (channels,) + positions.shape receives the result (computed in rows.dtype, then cast)."""
     dtype = rows.dtype.type
-    floor = np.floor(positions)
-    f = (positions - floor).astype(dtype)           # exact fraction, then rounded to dtype
+    frac, floor = np.modf(positions, positions)     # exact (positions are >= 0)
+    f = frac.astype(dtype)                          # the fraction rounded to dtype
+    floor -= 1.0                                    # index of the left-most tap (exact)
     first = floor.astype(np.intp)
-    first -= 1                                      # index of the left-most tap
+    del floor
+    n = rows.shape[1]
+    if first.size and (first.min() < 0 or first.max() + 3 >= n):
+        raise ValueError("interpolation positions must lie in [1, n - 2)")
     f2 = f * f
     hf3 = f2 * f
     hf3 *= 0.5
@@ -60,16 +72,19 @@ def catmull_rom_rows(rows: npt.NDArray[np.floating], positions: F64
     w2 = 1.0 - w0
     w2 -= w1
     w2 -= w3                                        # the weights sum to one
-    out = np.empty((rows.shape[0], *positions.shape), dtype=dtype)
-    tmp = np.empty(positions.shape, dtype=dtype)
-    n = rows.shape[1]
+    if out is None:
+        out = np.empty((rows.shape[0], *first.shape), dtype=dtype)
+    acc = np.empty(first.shape, dtype=dtype)
+    tmp = np.empty(first.shape, dtype=dtype)
     for c in range(rows.shape[0]):
-        row, o = rows[c], out[c]
-        # Shifted views read taps i-1 .. i+2 with one index array.
-        np.multiply(w0, row.take(first), out=o)
-        o += np.multiply(w1, row[1:n].take(first), out=tmp)
-        o += np.multiply(w2, row[2:n].take(first), out=tmp)
-        o += np.multiply(w3, row[3:n].take(first), out=tmp)
+        row = rows[c]
+        # Shifted views read taps i-1 .. i+2 with one index array. The indices were checked
+        # above, so "wrap" never wraps; it is only the faster gather.
+        np.multiply(w0, row.take(first, mode="wrap"), out=acc)
+        acc += np.multiply(w1, row[1:n].take(first, mode="wrap"), out=tmp)
+        acc += np.multiply(w2, row[2:n].take(first, mode="wrap"), out=tmp)
+        np.multiply(w3, row[3:n].take(first, mode="wrap"), out=tmp)
+        np.add(acc, tmp, out=out[c])    # summed in rows.dtype, stored in out.dtype
     return out
 
 
@@ -159,6 +174,19 @@ def harmonic_subgroups(spectra: C128, cycles: npt.ArrayLike, max_order: int,
     return np.asarray(ysg)
 
 
+_BINS: dict[tuple[int, int, int], tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]] = {}
+
+
+def _subgroup_bins(cycles: int, max_order: int, last: int
+                   ) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
+    """Bins of harmonics 1..H, (H,), and of their subgroups, (H, 3), clipped to ``last``."""
+    key = (cycles, max_order, last)
+    if key not in _BINS:
+        centre = cycles * np.arange(1, max_order + 1)
+        _BINS[key] = centre, np.minimum(centre[:, None] + np.array([-1, 0, 1]), last)
+    return _BINS[key]
+
+
 def window_subgroups(rows: npt.NDArray[np.floating], start: F64, end: F64,
                      cycles: npt.ArrayLike, max_order: int, points: int,
                      frac: F64 | None = None) -> tuple[F64, C128]:
@@ -188,25 +216,31 @@ def window_subgroups(rows: npt.NDArray[np.floating], start: F64, end: F64,
     """
     if frac is None:
         frac = np.arange(points) / points
+    if start.shape[0] == 0:
+        return np.zeros((rows.shape[0], 0, max_order)), np.zeros((rows.shape[0], 0), complex)
     span = end - start
-    pos = start[:, None] + span[:, None] * frac[None, :]
-    seg = catmull_rom_rows(rows, pos).astype(np.float64, copy=False)  # (channels, m, points)
+    seg = np.empty((rows.shape[0], span.shape[0], points))       # (channels, m, points)
+    pos = np.multiply.outer(span, frac)
+    pos += start[:, None]
+    _catmull_rom_rows_in_place(rows, pos, seg)
     spec = np.fft.rfft(seg, axis=-1)
     scale = 2.0 / points                    # a power of two: exact, so scaling may come last
     cyc = np.asarray(cycles, dtype=np.intp)
-    centre = cyc[:, None] * np.arange(1, max_order + 1)[None, :]              # (m, H)
     last = spec.shape[-1] - 1
     m = cyc.shape[0]
-    if np.all(cyc == cyc[0]):
-        idx = np.minimum(centre[0][:, None] + np.array([-1, 0, 1]), last)       # (H, 3)
+    c0 = int(cyc[0])
+    if cyc.min() == cyc.max():
+        centre_h, idx = _subgroup_bins(c0, max_order, last)
+        centre = centre_h[None, :]                                        # (1, H)
         picked = spec[:, :, idx]                                          # (channels, m, H, 3)
-        fund = spec[:, :, min(int(cyc[0]), last)]
+        fund = spec[:, :, min(c0, last)]
     else:
+        centre = cyc[:, None] * np.arange(1, max_order + 1)[None, :]          # (m, H)
         idx = np.minimum(centre[:, :, None] + np.array([-1, 0, 1]), last)       # (m, H, 3)
         picked = spec[:, np.arange(m)[:, None, None], idx]
         fund = spec[:, np.arange(m), np.minimum(cyc, last)]
     picked *= scale
-    ysg = np.sqrt(np.sum(picked.real**2 + picked.imag**2, axis=-1))      # (channels, m, H)
+    ysg = np.sqrt((picked.real**2 + picked.imag**2).sum(axis=-1))        # (channels, m, H)
     omega = 2.0 * np.pi * centre / span[:, None]
     ysg /= catmull_rom_response_fast(omega)[None, :, :]
     return np.asarray(ysg), np.asarray(fund * scale)
@@ -220,9 +254,8 @@ def thd_from_subgroups(ysg: F64) -> F64:
     IEC 61000-4-7 Ed.2 clause 3 (THDS, subgroup total harmonic distortion).
     """
     fund = ysg[..., 0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.sqrt(np.sum(ysg[..., 1:] ** 2, axis=-1)) / fund
-    return np.asarray(np.where(fund > 0, out, np.nan))
+    rest = np.sqrt((ysg[..., 1:] ** 2).sum(axis=-1))
+    return np.divide(rest, fund, out=np.full(fund.shape, np.nan), where=fund > 0)
 
 
 def window_thd(x: npt.ArrayLike, start: npt.ArrayLike, end: npt.ArrayLike, cycles: npt.ArrayLike,

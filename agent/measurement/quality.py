@@ -58,14 +58,28 @@ def flat_chunks(counts: npt.ArrayLike, chunk: int, nominal_peak_counts: npt.Arra
     -------
     flat : (m, channels) bool; constant : (m, channels) bool (the first reason)
     """
+    nominal_pp = 2.0 * np.asarray(nominal_peak_counts, dtype=np.float64)
+    return _flat_from_ptp(chunk_ptp(counts, chunk), live_fraction * nominal_pp,
+                          dead_fraction * nominal_pp)
+
+
+def chunk_ptp(counts: npt.ArrayLike, chunk: int) -> npt.NDArray[np.int64]:
+    """Peak-to-peak [count] of each whole chunk of ``chunk`` rows: (m, channels)."""
     c = np.asarray(counts)
     m = c.shape[0] // chunk
+    # Channel-major, so both reductions run over contiguous chunks.
     seg = np.ascontiguousarray(c[: m * chunk].T).reshape(c.shape[1], m, chunk)
-    ptp = (seg.max(axis=2).astype(np.int64) - seg.min(axis=2)).T
-    nominal_pp = 2.0 * np.asarray(nominal_peak_counts, dtype=np.float64)
+    return np.asarray((seg.max(axis=2).astype(np.int64) - seg.min(axis=2)).T)
+
+
+def _flat_from_ptp(ptp: npt.NDArray[np.int64], live_pp: npt.NDArray[np.float64],
+                   dead_pp: npt.NDArray[np.float64]) -> tuple[BOOL, BOOL]:
+    """flat_chunks' two masks from the chunks' peak-to-peak and the two thresholds [count]."""
     constant = ptp == 0
-    live = ptp >= live_fraction * nominal_pp
-    dead = ptp <= dead_fraction * nominal_pp
+    live = ptp >= live_pp
+    if not live.any():          # no channel live: only constant chunks count
+        return constant, constant
+    dead = ptp <= dead_pp
     live_count = live.sum(axis=1, keepdims=True)
     others_live = (live_count - live) > 0
     return constant | (dead & others_live), constant
@@ -124,6 +138,8 @@ class QualityMonitor:
         self.lo, self.hi = adc_rails(adc_bits)
         self.chunk = chunk
         self.nominal_peak_counts = np.asarray(nominal_peak_counts, dtype=np.float64)
+        self._live_pp = 0.2 * 2.0 * self.nominal_peak_counts    # flat_chunks' defaults
+        self._dead_pp = 0.02 * 2.0 * self.nominal_peak_counts
         self.channels = channels
         self._clip = _Regions("clipping", channels, chunk)
         self._flat = _Regions("flatline", channels, 0)
@@ -182,8 +198,10 @@ class QualityMonitor:
         self._part = data[m * self.chunk:].copy()
         self._part_start = dstart + m * self.chunk
         if m:
-            flat, constant = flat_chunks(data[: m * self.chunk], self.chunk,
-                                         self.nominal_peak_counts)
+            ptp = chunk_ptp(data[: m * self.chunk], self.chunk)
+            if all(cur is None for cur in self._flat.open) and (ptp > self._dead_pp).all():
+                return                  # the common case: nothing can be flat, nothing open
+            flat, constant = _flat_from_ptp(ptp, self._live_pp, self._dead_pp)
             cs = dstart + self.chunk * np.arange(m, dtype=np.int64)
             for c in range(self.channels):
                 hit = np.flatnonzero(flat[:, c])

@@ -46,35 +46,39 @@ def hysteresis_crossings(y: npt.NDArray[np.floating] | npt.NDArray[np.integer], 
     state : sign of that sample (state0 if none)
     """
     n = y.shape[0]
-    if np.issubdtype(y.dtype, np.integer):
+    if y.dtype.kind in "iu":
         band = math.floor(band)        # same decisions for integer y, without float casts
-    above = y > band
-    side = above.view(np.int8) - (y < -band).view(np.int8)     # +1 / 0 / -1 per sample
+    side = (y > band).view(np.int8) - (y < -band).view(np.int8)  # +1 / 0 / -1 per sample
     # Work on runs of equal side (a few per half cycle) instead of on every sample.
-    starts = np.flatnonzero(side[1:] != side[:-1])
+    starts = (side[1:] != side[:-1]).nonzero()[0]
     starts += 1
-    run_side = np.concatenate([side[:1], side[starts]])
-    out_run = np.flatnonzero(run_side)
+    run_start = np.concatenate(([0], starts))
+    run_side = side[run_start]
+    out_run = run_side.nonzero()[0]
     if out_run.shape[0] == 0:
         return np.zeros(0), -1, state0
-    run_start = np.concatenate([[0], starts])
     sv = run_side[out_run]
     last_out = n - 1 if run_side[-1] else int(run_start[-1]) - 1
-    prev = np.empty_like(sv)
-    prev[0] = state0
-    prev[1:] = sv[:-1]
+    prev = np.concatenate(([state0], sv[:-1]))
     ends = run_start[out_run[(sv != prev) & (prev != 0)]]   # first sample on the new side
-    t = np.zeros(0)
-    if ends.shape[0]:
-        pos = y > 0
-        zc = np.flatnonzero(pos[:-1] != pos[1:])
-        k = np.searchsorted(zc, ends) - 1  # last raw sign change before each exit
-        kk = np.maximum(ends - 1, 0)       # none (the in-band stretch began before y[0])
-        if zc.shape[0]:
-            kk = np.where(k >= 0, zc[np.maximum(k, 0)], kk)
-        y0, y1 = y[kk], y[np.minimum(kk + 1, n - 1)]
-        denom = np.where(y0 != y1, y0 - y1, 1)
-        t = kk + np.clip(y0 / denom, 0.0, 1.0)
+    if ends.shape[0] == 0:
+        return np.zeros(0), last_out, int(sv[-1])
+    pos = y > 0
+    zc = (pos[:-1] != pos[1:]).nonzero()[0]
+    k = zc.searchsorted(ends) - 1      # last raw sign change before each exit
+    if zc.shape[0] and k[0] >= 0:      # the usual case (ends ascending, so k is too)
+        kk = zc[k]
+        y0, y1 = y[kk], y[kk + 1]      # opposite signs: the ratio is inside [0, 1]
+        t = y0 / (y0 - y1)
+        t += kk
+        return t, last_out, int(sv[-1])
+    kk = np.maximum(ends - 1, 0)       # none (the in-band stretch began before y[0])
+    if zc.shape[0]:
+        kk = np.where(k >= 0, zc[np.maximum(k, 0)], kk)
+    y0, y1 = y[kk], y[np.minimum(kk + 1, n - 1)]
+    denom = np.where(y0 != y1, y0 - y1, 1)
+    t = np.minimum(np.maximum(y0 / denom, 0.0), 1.0)
+    t += kk
     return t, last_out, int(sv[-1])
 
 
@@ -120,13 +124,13 @@ def extend_chain(cands: list[F64], horizons: list[float], state: ChainState, hal
     while True:
         # Fast path: a run of well-spaced crossings on channel 0.
         c0 = cands[0]
-        i = int(np.searchsorted(c0, last + lo_k))
+        i = int(c0.searchsorted(last + lo_k))
         if i < c0.shape[0] and c0[i] <= last + hi_k:
             run = c0[i:]
             d = np.empty_like(run)
             d[0] = run[0] - last
             np.subtract(run[1:], run[:-1], out=d[1:])
-            bad = np.flatnonzero((d < lo_k) | (d > hi_k))
+            bad = ((d < lo_k) | (d > hi_k)).nonzero()[0]
             n = int(bad[0]) if bad.shape[0] else run.shape[0]
             out_t.append(run[:n])
             out_s.append(np.zeros(n))
@@ -135,7 +139,7 @@ def extend_chain(cands: list[F64], horizons: list[float], state: ChainState, hal
         chosen: float | None = None
         undecided = False
         for c, cand in enumerate(cands):
-            j = int(np.searchsorted(cand, last + lo_k))
+            j = int(cand.searchsorted(last + lo_k))
             if j < cand.shape[0] and cand[j] <= last + hi_k:
                 chosen = float(cand[j])
                 break
