@@ -16,8 +16,14 @@ core, and reports:
 
 from __future__ import annotations
 
-import argparse
 import os
+
+# One core: numpy's BLAS threads off before numpy loads (nothing hot uses BLAS, but a
+# benchmark should not borrow the second core).
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import argparse
 import time
 import tracemalloc
 from collections import defaultdict
@@ -85,7 +91,6 @@ def main() -> None:
         help="also trace Python allocations (slows the run: do not read its speed)",
     )
     args = ap.parse_args()
-    os.environ.setdefault("OMP_NUM_THREADS", "1")
 
     site = Site(
         nominal_v=120.0, nominal_hz=60.0, service_type="120/240", channel_names=("L1", "L2")
