@@ -152,6 +152,9 @@ def test_units_lost_power_offline_out_of_range(store: RecorderStore) -> None:
     # The power-loss event and the restart report give one outage window for h4.
     windows = [w for w in r["outage_windows"] if w["device"] == "h4"]
     assert len(windows) == 1 and set(windows[0]["sources"]) == {"last_gasp", "restart_report"}
+    # One home of five out is not a site outage (needs more than half of the site's homes:
+    # common practice for "most devices of a site").
+    assert r["site_outages"] == []
     assert dev["h5"]["state"] == "offline"
     assert dev["h5"]["silent_s"] == pytest.approx(900.0)
     reasons = {a["device"]: " ".join(a["reasons"]) for a in r["attention"]}

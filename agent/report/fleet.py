@@ -41,7 +41,6 @@ from agent.collect.correlate import (
     group_simultaneous,
     sarfi,
 )
-from agent.collect.outages import device_outage_windows
 from agent.report.compliance import (
     ansi_c84_1,
     en50160_voltage,
@@ -520,12 +519,11 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
             "skipped_open": result.skipped_open,
             "events_counted": len(per_home), "events_stored": len(records),
         })
-    statuses = [{**(d.get("status") or {}), "device": d["device"], "site": d["site"]}
-                for d in devices if d.get("status")]
+    # Outage windows as the store recorded them from every restart report and last-gasp
+    # event (the devices table keeps only the latest status, so it cannot give them).
+    # Reports the store could not read were dead-lettered with the reason, not dropped.
     outage_errors: list[str] = []
-    windows = device_outage_windows(statuses, [ev["payload"] for ev in all_events
-                                               if isinstance(ev.get("payload"), dict)],
-                                    errors=outage_errors)
+    windows = store.outage_windows(start_from=start_utc, end_before=end_utc)
     starts = [ev["start_utc"] for ev in all_events if ev.get("start_utc") is not None]
     trend_t = [s["last_seen_utc"] for s in sections if s["last_seen_utc"] is not None]
     return {
@@ -548,6 +546,11 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
                             "end": _iso(w.end_utc), "duration_s": _num(w.duration_s, 3),
                             "sources": list(w.sources)} for w in windows],
         "outage_errors": outage_errors,
+        # Most of a site's monitors out at once: one site-level outage, not N unit outages.
+        "site_outages": [{"site": o.site, "start": _iso(o.start_utc), "end": _iso(o.end_utc),
+                          "duration_s": _num(o.end_utc - o.start_utc, 3),
+                          "devices": list(o.devices), "devices_monitored": o.devices_monitored}
+                         for o in store.site_outages(start_from=start_utc, end_before=end_utc)],
         "attention": [{"device": s["device"], "site": s["site"], "reasons": s["attention"]}
                       for s in sections if s["attention"]],
         "store": {"events": len(all_events),
@@ -693,6 +696,12 @@ def render_text(report: Mapping[str, Any]) -> str:
         lines += _table(("home", "from", "to", "s", "from reports"),
                         [(w["device"], w["start"], w["end"], w["duration_s"],
                           ", ".join(w["sources"])) for w in report["outage_windows"]])
+    if report["site_outages"]:
+        lines.append("site outages (most of a site's monitors out at once):")
+        lines += _table(("site", "from", "to", "s", "homes out"),
+                        [(o["site"], o["start"], o["end"], o["duration_s"],
+                          f"{len(o['devices'])}/{o['devices_monitored']}")
+                         for o in report["site_outages"]])
     lines.append("")
 
     lines.append("== Every home ==")

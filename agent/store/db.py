@@ -152,6 +152,20 @@ class Database:
             self.reconnect()  # a read outside a transaction after the connection was lost
         return self._pg.execute(sql, tuple(params))
 
+    def executemany(self, text: str, rows: Sequence[Sequence[Any]]) -> None:
+        """Run one statement for each parameter row (one round trip per batch on
+        PostgreSQL's pipeline, one prepared statement on SQLite)."""
+        if not rows:
+            return
+        sql = self.sql(text)
+        if self._sqlite is not None:
+            self._sqlite.executemany(sql, rows)
+            return
+        if not self._in_tx and self.broken:
+            self.reconnect()
+        with self._pg.cursor() as cur:
+            cur.executemany(sql, rows)
+
     def query(self, text: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
         return [tuple(r) for r in self.execute(text, params).fetchall()]
 

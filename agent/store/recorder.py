@@ -1,5 +1,6 @@
 """The collector's recorder store: devices, aggregates, trend, events, captures, gaps,
-dead letters, idempotent receipt bookkeeping and the export queue, over SQLite or PostgreSQL.
+outage windows, dead letters, idempotent receipt bookkeeping and the export queue, over SQLite
+or PostgreSQL.
 
 Every decoded device message has an envelope ``v, type, device, site, epoch, seq``; ``seq``
 counts contiguously from ``first_seq`` within one ``epoch`` at the source. :meth:`commit_batch`
@@ -7,6 +8,15 @@ writes a whole batch in ONE transaction and returns, per touched ``(device, epoc
 highest contiguous committed seq (``committed_upto``), counting seqs announced by ``gap``
 messages as accounted for. The collector publishes that as its retained ack, so the edge may
 drop those messages from its outbox: nothing is acknowledged before it is durable.
+
+Speed: each message is encoded to JSON once, and its receipt, trend, aggregate and export rows
+are written in bulk (``executemany``) at the end of the batch. A batch is first applied
+without per-message savepoints; only if something in it is refused is that attempt undone and
+the batch applied again with one savepoint per message (still in the same transaction).
+
+Outage windows (rules in :mod:`agent.collect.outages`) are kept one per report, from a
+device's restart report (a sequenced online status with ``last_ran``) and from each event
+closed with ``ended_by = "power_loss"``; a Last Will only marks the device offline.
 
 Concurrency: several collectors may share one PostgreSQL database. Each batch first locks the
 ``streams`` rows of the streams it touches, in sorted order (no deadlock cycles), so batches of
@@ -17,7 +27,7 @@ also serialises the capture chunks of one capture (they travel in one stream), s
 
 from __future__ import annotations
 
-import base64
+import binascii
 import hashlib
 import json
 import os
@@ -25,10 +35,19 @@ import re
 import time
 import uuid
 from collections.abc import Iterable, Mapping, Sequence
+from contextlib import suppress
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from agent.collect.outages import (
+    OutageWindow,
+    SiteOutage,
+    device_outage_windows,
+    last_gasp_window,
+    restart_window,
+)
+from agent.collect.outages import site_outages as _site_outages
 from agent.events.types import Capture
 from agent.store.db import Database, StoreError
 
@@ -49,6 +68,9 @@ MAX_SEQ = 2**53 - 1
 ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}\Z")
 SITE_MODEL_KEYS = ("nominal_v", "nominal_hz", "service_type", "channel_names",
                    "measurement_point", "feeder", "transformer", "labels")
+
+#: The schema version that added ``outage_windows`` (older stores are backfilled).
+_OUTAGE_WINDOWS_VERSION = 2
 
 _MIGRATIONS: list[tuple[int, str]] = [
     (1, """
@@ -185,6 +207,24 @@ CREATE TABLE IF NOT EXISTS export_queue (
     claim_token TEXT
 )
 """),
+    # Outage windows from restart reports and last-gasp (power-loss) events, one per report:
+    # a device's latest status alone would lose them (the next status overwrites it).
+    # ``slack_s``: the end uncertainty of a last-gasp window (merging tolerance).
+    (2, """
+CREATE TABLE IF NOT EXISTS outage_windows (
+    id {autoid},
+    device TEXT NOT NULL,
+    site TEXT NOT NULL,
+    start_utc {double} NOT NULL,
+    end_utc {double} NOT NULL,
+    source TEXT NOT NULL CHECK (source IN ('restart', 'last_gasp')),
+    ref TEXT NOT NULL,
+    slack_s {double} NOT NULL DEFAULT 0,
+    received_at {double} NOT NULL,
+    UNIQUE (device, source, ref)
+);
+CREATE INDEX IF NOT EXISTS outage_windows_site ON outage_windows (site, start_utc)
+"""),
 ]
 
 
@@ -225,8 +265,11 @@ class BadMessage(ValueError):
 
 
 def _json_default(value: Any) -> Any:
+    # Packed arrays put several bytes fields in every message: the plain bytes case first.
+    if type(value) is bytes:
+        return {"$base64": binascii.b2a_base64(value, newline=False).decode("ascii")}
     if isinstance(value, bytes | bytearray | memoryview):
-        return {"$base64": base64.b64encode(bytes(value)).decode("ascii")}
+        return {"$base64": binascii.b2a_base64(bytes(value), newline=False).decode("ascii")}
     if isinstance(value, tuple | set | frozenset):
         return list(value)
     if hasattr(value, "tolist"):  # numpy arrays and scalars
@@ -234,9 +277,13 @@ def _json_default(value: Any) -> Any:
     raise TypeError(f"cannot store {type(value).__name__} as JSON")
 
 
+# One encoder for every call: json.dumps with options builds a new one each time.
+_ENCODER = json.JSONEncoder(default=_json_default, sort_keys=True, separators=(",", ":"))
+
+
 def to_json(value: Any) -> str:
     """JSON text for storage; bytes become ``{"$base64": ...}``; NaN kept (Python reads it)."""
-    return json.dumps(value, default=_json_default, sort_keys=True, separators=(",", ":"))
+    return _ENCODER.encode(value)
 
 
 def from_json(text: str | None) -> Any:
@@ -323,6 +370,41 @@ def write_file_durably(directory: Path, name: str, data: bytes) -> Path:
     return final
 
 
+class _Pending:
+    """Rows of a batch written in bulk (``executemany``) rather than one statement each;
+    none of them is read back while the batch is applied."""
+
+    _SQL = (("received", "INSERT INTO received (device, epoch, seq, type, received_at)"
+             " VALUES (?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"),
+            ("aggregates", "INSERT INTO aggregates (device, epoch, seq, site, kind, t_utc,"
+             " duration_s, payload, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)"
+             " ON CONFLICT DO NOTHING"),
+            ("trend", "INSERT INTO trend (device, epoch, seq, site, t_utc, payload, received_at)"
+             " VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"),
+            ("exports", "INSERT INTO export_queue (kind, device, site, ref, payload, created_at)"
+             " VALUES (?, ?, ?, ?, ?, ?)"))
+
+    def __init__(self) -> None:
+        self.received: list[tuple[Any, ...]] = []
+        self.aggregates: list[tuple[Any, ...]] = []
+        self.trend: list[tuple[Any, ...]] = []
+        self.exports: list[tuple[Any, ...]] = []
+
+    def mark(self) -> tuple[int, ...]:
+        return tuple(len(getattr(self, name)) for name, _ in self._SQL)
+
+    def truncate(self, mark: tuple[int, ...]) -> None:
+        for (name, _), n in zip(self._SQL, mark, strict=True):
+            del getattr(self, name)[n:]
+
+    def flush(self, db: Database) -> None:
+        for name, sql in self._SQL:
+            rows = getattr(self, name)
+            if rows:
+                db.executemany(sql, rows)
+                rows.clear()
+
+
 class RecorderStore:
     """The recorder store over one database connection (one per thread or process).
 
@@ -340,6 +422,7 @@ class RecorderStore:
         self.keep_trend = keep_trend
         self.first_seq = first_seq
         self._lock_suffix = " FOR UPDATE" if self.db.dialect == "postgresql" else ""
+        self._pending = _Pending()
         if migrate:
             try:
                 self.migrate()
@@ -351,7 +434,32 @@ class RecorderStore:
 
     def migrate(self) -> int:
         """Bring the schema up to date; safe to run again and from several collectors."""
-        return self.db.migrate(_MIGRATIONS)
+        before = self.db.schema_version()
+        after = self.db.migrate(_MIGRATIONS)
+        if before < _OUTAGE_WINDOWS_VERSION <= after and before > 0:
+            self.db.run_in_transaction(self._backfill_outage_windows)
+        return after
+
+    def _backfill_outage_windows(self, db: Database) -> None:
+        """Windows from what a store older than the outage_windows table still holds: every
+        stored power-loss event, and each device's latest status if it is a restart report
+        (earlier restart reports were overwritten). Idempotent (upserts on the unique key);
+        a report that cannot give a window stays as it is, in its own table."""
+        now = time.time()
+        for device, site, state, payload in db.query(
+                "SELECT device, site, state, payload FROM events WHERE state = 'closed'"):
+            msg = from_json(payload)
+            if isinstance(msg, dict) and msg.get("ended_by") == "power_loss":
+                with suppress(BadMessage):
+                    event_id = str(msg.get("event_id"))
+                    self._record_last_gasp(db, device, site, event_id, state, msg, now)
+        for device, site, status in db.query("SELECT device, site, status FROM devices"):
+            report = from_json(status)
+            if isinstance(report, dict) and report.get("last_ran") is not None:
+                with suppress(BadMessage):
+                    self._record_restart(db, device, site, "latest-status",
+                                         report.get("last_ran"), {**report, "device": device,
+                                                                  "site": site}, now)
 
     @staticmethod
     def latest_schema_version() -> int:
@@ -399,6 +507,7 @@ class RecorderStore:
 
         # Lock every touched stream first, in sorted order (see module docstring).
         upto: dict[tuple[str, str], int] = {}
+        already: dict[tuple[str, str], set[int]] = {}
         for device, epoch in sorted({(env[1], env[3]) for _, env, _ in parsed}):
             db.execute("INSERT INTO streams (device, epoch, committed_upto, first_seen, updated_at)"
                        " VALUES (?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
@@ -407,6 +516,11 @@ class RecorderStore:
                                + self._lock_suffix, (device, epoch))
             assert row is not None
             upto[(device, epoch)] = int(row[0])
+            # Seqs above committed_upto received earlier (beyond a hole). The stream lock keeps
+            # other writers from adding any, so this set decides what is new in this batch.
+            already[(device, epoch)] = {int(r[0]) for r in db.query(
+                "SELECT seq FROM received WHERE device = ? AND epoch = ? AND seq > ?",
+                (device, epoch, upto[(device, epoch)]))}
 
         seen: dict[str, tuple[str, float]] = {}
         for _, (_, device, site, _, _), at in parsed:
@@ -415,36 +529,27 @@ class RecorderStore:
         for device in sorted(seen):
             self._touch_device(db, device, *seen[device])
 
+        self._pending = _Pending()
         # Presence is outside the sequence: applied every time, never deduplicated or acked.
         for item, device, site, at in presence:
             self._touch_device(db, device, site, at)
             self._apply_status(db, device, site, item.message, at)
             self._enqueue(db, "status", device, site, f"{device}/presence", item.message, at)
+        self._pending.flush(db)
 
+        # First the whole batch without a savepoint per message (the common case: nothing is
+        # refused). If anything is, undo it all and apply the batch again with one savepoint
+        # per message, so the refused message is dead-lettered alone. Both within this one
+        # transaction.
         refused: tuple[type[Exception], ...] = (BadMessage, TypeError, ValueError,
                                                 OverflowError, *db.data_errors)
-        for item, env, at in parsed:
-            kind, device, site, epoch, seq = env
-            if seq <= upto[(device, epoch)]:
-                # Already committed or announced as dropped (a gap range never covers a message
-                # still to be sent): a redelivery, even after prune_received().
-                continue
-            received = ("INSERT INTO received (device, epoch, seq, type, received_at)"
-                        " VALUES (?, ?, ?, ?, ?) ON CONFLICT DO NOTHING")
-            # A savepoint per message: one that the database refuses (a value it cannot hold)
-            # is dead-lettered alone instead of failing the whole batch again and again.
-            db.execute("SAVEPOINT item")
-            try:
-                if db.execute(received, (device, epoch, seq, kind, at)).rowcount == 1:
-                    if item.reject is not None:
-                        self._dead_letter_item(db, item, item.reject[:1000], at, device, site)
-                    else:
-                        self._apply(db, kind, device, site, epoch, seq, item.message, at)
-            except refused as exc:
-                db.execute("ROLLBACK TO SAVEPOINT item")
-                db.execute(received, (device, epoch, seq, kind, at))
-                self._dead_letter_item(db, item, f"{kind}: {exc}"[:1000], at, device, site)
-            db.execute("RELEASE SAVEPOINT item")
+        db.execute("SAVEPOINT batch")
+        try:
+            self._apply_all(db, parsed, upto, already, refused, per_message=False)
+        except refused:
+            db.execute("ROLLBACK TO SAVEPOINT batch")
+            self._apply_all(db, parsed, upto, already, refused, per_message=True)
+        db.execute("RELEASE SAVEPOINT batch")
 
         for key in upto:
             new = self._advance(db, key[0], key[1], upto[key])
@@ -453,6 +558,51 @@ class RecorderStore:
                            " WHERE device = ? AND epoch = ?", (new, now, key[0], key[1]))
                 upto[key] = new
         return upto
+
+    def _apply_all(self, db: Database, parsed: Sequence[tuple[Item, tuple[str, str, str, str, int],
+                                                              float]],
+                   upto: Mapping[tuple[str, str], int],
+                   already: Mapping[tuple[str, str], set[int]],
+                   refused: tuple[type[Exception], ...], *, per_message: bool) -> None:
+        """Apply the new messages of a batch. ``per_message=False``: rows are written in bulk
+        at the end and any refusal propagates; True: a savepoint per message, and a message
+        that is refused is rolled back and dead-lettered (its seq still counts as received)."""
+        pending = self._pending = _Pending()
+        accepted = {key: set(seqs) for key, seqs in already.items()}
+        for item, env, at in parsed:
+            kind, device, site, epoch, seq = env
+            stream = (device, epoch)
+            if seq <= upto[stream] or seq in accepted[stream]:
+                # Already committed or announced as dropped (a gap range never covers a message
+                # still to be sent), or received before: a redelivery, even after
+                # prune_received().
+                continue
+            accepted[stream].add(seq)
+            received = (device, epoch, seq, kind, at)
+            if not per_message:
+                pending.received.append(received)
+                if item.reject is not None:
+                    self._dead_letter_item(db, item, item.reject[:1000], at, device, site)
+                else:
+                    self._apply(db, kind, device, site, epoch, seq, item.message, at)
+                continue
+            db.execute("SAVEPOINT item")
+            mark = pending.mark()
+            try:
+                pending.received.append(received)
+                if item.reject is not None:
+                    self._dead_letter_item(db, item, item.reject[:1000], at, device, site)
+                else:
+                    self._apply(db, kind, device, site, epoch, seq, item.message, at)
+                pending.flush(db)
+            except refused as exc:
+                db.execute("ROLLBACK TO SAVEPOINT item")
+                pending.truncate(mark)
+                pending.received.append(received)
+                pending.flush(db)
+                self._dead_letter_item(db, item, f"{kind}: {exc}"[:1000], at, device, site)
+            db.execute("RELEASE SAVEPOINT item")
+        pending.flush(db)
 
     _NEW_DEVICE = ("INSERT INTO devices (device, site, model, first_seen, last_seen, state,"
                    " state_since) VALUES (?, ?, '', ?, ?, 'unknown', ?)")
@@ -488,46 +638,49 @@ class RecorderStore:
     def _apply(self, db: Database, kind: str, device: str, site: str, epoch: str, seq: int,
                msg: Mapping[str, Any], at: float) -> None:
         ref = f"{device}/{epoch}/{seq}"
+        pending = self._pending
         if kind == "aggregate":
-            db.execute("INSERT INTO aggregates (device, epoch, seq, site, kind, t_utc, duration_s,"
-                       " payload, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)"
-                       " ON CONFLICT DO NOTHING",
-                       (device, epoch, seq, site, _opt_str(msg, "kind"),
-                        _opt_float(msg, "t", "t_utc"), _opt_float(msg, "duration_s"),
-                        to_json(msg), at))
-            self._enqueue(db, kind, device, site, ref, msg, at)
+            text = to_json(msg)
+            pending.aggregates.append(
+                (device, epoch, seq, site, _opt_str(msg, "kind"), _opt_float(msg, "t", "t_utc"),
+                 _opt_float(msg, "duration_s"), text, at))
+            self._enqueue(db, kind, device, site, ref, msg, at, text)
         elif kind == "summary":
+            text = to_json(msg)
             if self.keep_trend:
-                db.execute("INSERT INTO trend (device, epoch, seq, site, t_utc, payload,"
-                           " received_at) VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
-                           (device, epoch, seq, site, _opt_float(msg, "t0", "t_utc", "t"),
-                            to_json(msg), at))
-            self._enqueue(db, kind, device, site, ref, msg, at)
+                pending.trend.append((device, epoch, seq, site,
+                                      _opt_float(msg, "t0", "t_utc", "t"), text, at))
+            self._enqueue(db, kind, device, site, ref, msg, at, text)
         elif kind == "gap":
             first, last = _int(msg, "first_seq"), _int(msg, "last_seq")
             if first > last:
                 raise BadMessage(f"first_seq {first} > last_seq {last}")
             count = None if msg.get("count") is None else _int(msg, "count")
+            text = to_json(msg)
+            # Written at once: committed_upto reads the gaps of the batch.
             db.execute("INSERT INTO gaps (device, epoch, seq, site, lane, first_seq, last_seq,"
                        " count, reason, payload, received_at)"
                        " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING",
                        (device, epoch, seq, site, _opt_str(msg, "lane"), first, last, count,
-                        _opt_str(msg, "reason"), to_json(msg), at))
-            self._enqueue(db, kind, device, site, ref, msg, at)
+                        _opt_str(msg, "reason"), text, at))
+            self._enqueue(db, kind, device, site, ref, msg, at, text)
         elif kind == "status":
             self._apply_status(db, device, site, msg, at)
+            self._record_restart(db, device, site, epoch, seq, msg, at)
             self._enqueue(db, kind, device, site, ref, msg, at)
         elif kind == "event":
-            if self._apply_event(db, device, site, epoch, seq, msg, at):
-                self._enqueue(db, kind, device, site, str(msg["event_id"]), msg, at)
+            stored = self._apply_event(db, device, site, epoch, seq, msg, at)
+            if stored is not None:
+                self._enqueue(db, kind, device, site, str(msg["event_id"]), msg, at, stored)
         elif kind == "capture":
             self._apply_chunk(db, device, site, msg, at)
 
     # --- events ---------------------------------------------------------------------------
 
     def _apply_event(self, db: Database, device: str, site: str, epoch: str, seq: int,
-                     msg: Mapping[str, Any], at: float) -> bool:
-        """Insert or monotonically update an event; True when the stored row changed.
+                     msg: Mapping[str, Any], at: float) -> str | None:
+        """Insert or monotonically update an event; the stored JSON when the row changed,
+        else None. A closed event ended by a power loss records its last-gasp outage window.
 
         Order: closed beats open; within the same state, a higher seq of the same epoch
         is newer. A closed event is never reopened; an older version never overwrites.
@@ -552,10 +705,11 @@ class RecorderStore:
         if duration is None and start is not None and end is not None:
             duration = end - start
         cv = _opt_str(msg, "classifier_version")
+        text = to_json(msg)
         values = (device, site, epoch, seq, _opt_str(msg, "kind"), state, to_json(channels),
                   start, end, duration, _opt_float(msg, "level_v"), _opt_float(msg, "level_pu"),
                   to_json(thresholds), to_json(classification),
-                  cv, to_json(msg))
+                  cv, text)
         row = db.query_one("SELECT device, epoch, seq, state FROM events WHERE event_id = ?"
                            + self._lock_suffix, (event_id,))
         if row is None:
@@ -566,7 +720,8 @@ class RecorderStore:
                 " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
                 " ON CONFLICT DO NOTHING", (*values, event_id, at, at))
             if cur.rowcount == 1:
-                return True
+                self._record_last_gasp(db, device, site, event_id, state, msg, at)
+                return text
             row = db.query_one("SELECT device, epoch, seq, state FROM events WHERE event_id = ?"
                                + self._lock_suffix, (event_id,))
             assert row is not None
@@ -576,13 +731,57 @@ class RecorderStore:
         rank, old_rank = EVENT_STATES.index(state), EVENT_STATES.index(old_state)
         newer = rank > old_rank or (rank == old_rank and epoch == old_epoch and seq > old_seq)
         if not newer:
-            return False
+            return None
         db.execute(
             "UPDATE events SET device = ?, site = ?, epoch = ?, seq = ?, kind = ?, state = ?,"
             " channels = ?, start_utc = ?, end_utc = ?, duration_s = ?, level_v = ?,"
             " level_pu = ?, thresholds = ?, classification = ?, classifier_version = ?,"
             " payload = ?, updated_at = ? WHERE event_id = ?", (*values, at, event_id))
-        return True
+        self._record_last_gasp(db, device, site, event_id, state, msg, at)
+        return text
+
+    # --- outage windows -------------------------------------------------------------------
+
+    _UPSERT_WINDOW = ("INSERT INTO outage_windows (device, site, start_utc, end_utc, source, ref,"
+                      " slack_s, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+                      " ON CONFLICT (device, source, ref) DO UPDATE SET site = excluded.site,"
+                      " start_utc = excluded.start_utc, end_utc = excluded.end_utc,"
+                      " slack_s = excluded.slack_s, received_at = excluded.received_at")
+
+    def _record_last_gasp(self, db: Database, device: str, site: str, event_id: str,
+                          state: str, msg: Mapping[str, Any], at: float) -> None:
+        """Keep the outage window of the stored (newest) version of a closed event: the
+        event start to its inferred end when it was ended by a power loss, none otherwise."""
+        if state != "closed":
+            return
+        try:
+            window = last_gasp_window(msg)
+        except ValueError as exc:
+            raise BadMessage(f"power-loss event {event_id}: {exc}") from exc
+        if window is None:
+            # A newer version no longer says power loss: its earlier window goes.
+            db.execute("DELETE FROM outage_windows WHERE device = ? AND source = 'last_gasp'"
+                       " AND ref = ?", (device, event_id))
+            return
+        slack = _opt_float(msg, "end_uncertainty_s") or 0.0
+        db.execute(self._UPSERT_WINDOW, (device, site, window.start_utc, window.end_utc,
+                                         "last_gasp", event_id, slack, at))
+
+    def _record_restart(self, db: Database, device: str, site: str, epoch: str, seq: object,
+                        msg: Mapping[str, Any], at: float) -> None:
+        """The outage window of a restart report (a device's own online status with
+        ``last_ran``): from when the agent last ran to its restart (``t - uptime_s``).
+
+        Only sequenced status messages count: a Last Will or retained presence message
+        (seq 0) marks the device offline or online and never makes a window.
+        """
+        try:
+            window = restart_window(msg)
+        except ValueError as exc:
+            raise BadMessage(f"restart report: {exc}") from exc
+        if window is not None:
+            db.execute(self._UPSERT_WINDOW, (device, site, window.start_utc, window.end_utc,
+                                             "restart", f"{epoch}/{seq}", 0.0, at))
 
     # --- captures -------------------------------------------------------------------------
 
@@ -759,12 +958,14 @@ class RecorderStore:
     # --- export queue ---------------------------------------------------------------------
 
     def _enqueue(self, db: Database, kind: str, device: str, site: str, ref: str,
-                 payload: Mapping[str, Any], at: float) -> None:
-        """One export row: ``kind`` = message type, ``payload`` = the message (for a capture:
-        its metadata, not the samples). Bytes are stored as ``{"$base64": ...}``."""
-        body = {k: v for k, v in payload.items() if k != "data"}
-        db.execute("INSERT INTO export_queue (kind, device, site, ref, payload, created_at)"
-                   " VALUES (?, ?, ?, ?, ?, ?)", (kind, device, site, ref, to_json(body), at))
+                 payload: Mapping[str, Any], at: float, text: str | None = None) -> None:
+        """Queue one export row (written with the batch's other rows, in order): ``kind`` =
+        message type, ``payload`` = the message (for a capture: its metadata, not the
+        samples). Bytes are stored as ``{"$base64": ...}``. ``text``: ``to_json(payload)``
+        when the caller has it already."""
+        if text is None or "data" in payload:
+            text = to_json({k: v for k, v in payload.items() if k != "data"})
+        self._pending.exports.append((kind, device, site, ref, text, at))
 
     def claim_exports(self, limit: int = 500, *, lease_s: float = 60.0) -> list[ExportRow]:
         """Claim up to ``limit`` unclaimed (or lease-expired) export rows, lowest id first.
@@ -990,6 +1191,55 @@ class RecorderStore:
         return [{"device": r[0], "epoch": r[1], "seq": int(r[2]), "site": r[3], "t_utc": r[4],
                  "payload": from_json(r[5])} for r in rows]
 
+    def outage_windows(self, site: str | None = None, *, merged: bool = True,
+                       start_from: float | None = None, end_before: float | None = None
+                       ) -> list[OutageWindow]:
+        """Device outage windows from the stored restart reports and last-gasp events, of
+        one site or all, sorted by (start, device).
+
+        ``merged`` (default): the windows of one device that overlap or touch are one window
+        (:func:`agent.collect.outages.device_outage_windows`, sources ``restart_report`` and
+        ``last_gasp``); False: one window per stored report. ``start_from``/``end_before``
+        [s UTC]: only windows overlapping ``[start_from, end_before)``.
+        """
+        conds: list[str] = []
+        params: list[Any] = []
+        for cond, value in (("site = ?", site), ("end_utc >= ?", start_from),
+                            ("start_utc < ?", end_before)):
+            if value is not None:
+                conds.append(cond)
+                params.append(value)
+        where = ("WHERE " + " AND ".join(conds)) if conds else ""
+        rows = self.db.query("SELECT device, site, start_utc, end_utc, source, slack_s FROM"
+                             " outage_windows " + where + " ORDER BY start_utc, device, id",
+                             tuple(params))
+        if not merged:
+            return [OutageWindow(r[0], r[1], float(r[2]), float(r[3]),
+                                 ("restart_report" if r[4] == "restart" else "last_gasp",))
+                    for r in rows]
+        # The stored windows as the reports they came from, so the merge rule is the pure one.
+        restarts = [{"device": r[0], "site": r[1], "state": "online", "last_ran": r[2],
+                     "t": r[3]} for r in rows if r[4] == "restart"]
+        gasps = [{"device": r[0], "site": r[1], "ended_by": "power_loss", "start_utc": r[2],
+                  "end_utc": r[3], "end_uncertainty_s": r[5]} for r in rows
+                 if r[4] == "last_gasp"]
+        return device_outage_windows(restarts, gasps)
+
+    def site_outages(self, fraction: float = 0.5, *, site: str | None = None,
+                     start_from: float | None = None, end_before: float | None = None
+                     ) -> list[SiteOutage]:
+        """Site-level outages: periods when more than ``fraction`` of a site's devices were
+        out at once (:func:`agent.collect.outages.site_outages` over :meth:`outage_windows`;
+        a site's devices are those the store knows at that site, plus any with a window
+        there)."""
+        windows = self.outage_windows(site, start_from=start_from, end_before=end_before)
+        members: dict[str, set[str]] = {}
+        for device, dev_site in self.db.query("SELECT device, site FROM devices"):
+            members.setdefault(dev_site, set()).add(device)
+        for w in windows:
+            members.setdefault(w.site, set()).add(w.device)
+        return _site_outages(windows, members, fraction)
+
     def count(self, table: str) -> int:
         """Row count of one store table (for tests and reports)."""
         if table not in _TABLES:
@@ -999,7 +1249,8 @@ class RecorderStore:
 
 
 _TABLES = ("devices", "streams", "received", "aggregates", "trend", "events", "captures",
-           "capture_chunks", "gaps", "dead_letters", "export_queue", "schema_version")
+           "capture_chunks", "gaps", "dead_letters", "export_queue", "outage_windows",
+           "schema_version")
 
 __all__ = ["BadMessage", "ExportRow", "Item", "RecorderStore", "StoreError", "envelope",
            "from_json", "to_json", "write_file_durably"]
