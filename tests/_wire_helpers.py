@@ -121,3 +121,15 @@ def sample_messages() -> dict[str, dict[str, Any]]:
     msgs = {k: IDENT.stamp(b, seq=i + 1) for i, (k, b) in enumerate(sample_bodies().items())}
     msgs["ack"] = ack_message("site-7", "dev-0042", "e20261201a", 160, "collector-1", t=T0 + 130)
     return msgs
+
+
+def json_paths(node: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
+    """Every key/index path inside a decoded message (for mutation tests)."""
+    out = [prefix] if prefix else []
+    if isinstance(node, dict):
+        for k, v in node.items():
+            out += json_paths(v, (*prefix, k))
+    elif isinstance(node, list):
+        for i, v in enumerate(node):
+            out += json_paths(v, (*prefix, i))
+    return out

@@ -19,7 +19,7 @@ from typing import Any
 import msgpack
 import numpy as np
 import pytest
-from _wire_helpers import sample_messages, summary_bodies
+from _wire_helpers import json_paths, sample_messages, summary_bodies
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
@@ -57,17 +57,6 @@ def fast_accepts(msg: Any, kind: str, strict: bool) -> bool:
     return bool((v._strict_ok if strict else v._ok)[kind](msg))
 
 
-def _paths(node: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
-    out = [prefix] if prefix else []
-    if isinstance(node, dict):
-        for k, v in node.items():
-            out += _paths(v, (*prefix, k))
-    elif isinstance(node, list):
-        for i, v in enumerate(node):
-            out += _paths(v, (*prefix, i))
-    return out
-
-
 # Values aimed at the schema boundaries (bounds, lengths, types, NaN/inf, 5.0 vs 5, bytes).
 _edge = st.one_of(
     st.none(), st.booleans(), st.integers(-(2**64), 2**64),
@@ -89,7 +78,7 @@ def test_fast_predicate_agrees_with_the_full_check(kind: str, strict: bool,
                                                    data: st.DataObject) -> None:
     msg = copy.deepcopy(sample_messages()[kind])
     for _ in range(data.draw(st.sampled_from([0, 1, 1, 1, 2, 3]))):
-        path = data.draw(st.sampled_from(_paths(msg)))
+        path = data.draw(st.sampled_from(json_paths(msg)))
         node = msg
         for p in path[:-1]:
             node = node[p]

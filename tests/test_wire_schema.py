@@ -12,7 +12,7 @@ from typing import Any
 import jsonschema
 import msgpack
 import pytest
-from _wire_helpers import IDENT, T0, sample_capture, sample_event, sample_messages
+from _wire_helpers import IDENT, T0, json_paths, sample_capture, sample_event, sample_messages
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -76,17 +76,6 @@ def test_jsonschema_accepts_every_capture_chunk() -> None:
         assert js_valid(generic, "capture")
 
 
-def _paths(node: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
-    out = [prefix] if prefix else []
-    if isinstance(node, dict):
-        for k, v in node.items():
-            out += _paths(v, (*prefix, k))
-    elif isinstance(node, list):
-        for i, v in enumerate(node):
-            out += _paths(v, (*prefix, i))
-    return out
-
-
 def _get_parent(msg: Any, path: tuple[Any, ...]) -> Any:
     node = msg
     for p in path[:-1]:
@@ -117,7 +106,7 @@ def test_our_validator_agrees_with_jsonschema_on_mutations(kind: str, data: st.D
     msg = copy.deepcopy(sample_messages()[kind])
     # Mostly one mutation, so a single broken rule decides the outcome.
     for _ in range(data.draw(st.sampled_from([0, 1, 1, 1, 1, 2, 3]))):
-        paths = _paths(msg)
+        paths = json_paths(msg)
         op = data.draw(st.sampled_from(["replace", "delete", "add", "dup", "grow"]))
         path = data.draw(st.sampled_from(paths))
         parent = _get_parent(msg, path)

@@ -71,18 +71,11 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``python -m agent.cli.broker ...``: the broker commands without the other commands."""
-    parser = argparse.ArgumentParser(prog="halfcycle")
-    register(parser.add_subparsers(dest="command", metavar="COMMAND"))
-    args = parser.parse_args(argv)
-    if not getattr(args, "func", None):
-        parser.print_help()
-        return 2
-    try:
-        return int(args.func(args) or 0)
-    except UserError as exc:
-        print(f"halfcycle broker: error: {exc}", file=sys.stderr)
-        return 2
+    """``python -m agent.cli.broker broker ...``: the same as the ``halfcycle`` command (the
+    tests start their brokers this way, without depending on the console script)."""
+    from agent.cli.main import main as halfcycle_main
+
+    return halfcycle_main(argv)
 
 
 if __name__ == "__main__":
