@@ -40,6 +40,8 @@ from agent.wire.records import FLAG_BITS, SummaryBatcher, default_rms_exponent, 
 
 log = structlog.get_logger("halfcycle.edge")
 
+# Message kinds that carry the clock state of the data they hold (events carry their own).
+_CLOCKED_KINDS = ("summary", "aggregate", "capture")
 # Sources that are replayed or synthesised carry no wall time of their own.
 _LIVE_KINDS = ("serial",)
 
@@ -203,12 +205,16 @@ class EdgeSink:
         self.started = time.monotonic()
         self._last_heartbeat = time.monotonic()
         self.counters = SinkCounters()
+        self._steps_seen = int(getattr(timebase, "steps", 0) or 0)
         self._pending: list[tuple[str, Any, Lane]] = []
 
     def _topic(self, kind: str) -> str:
         return topics.topic(self.site.site_id, self.site.device_id, kind)
 
     def _queue(self, kind: str, body: dict[str, Any], lane: Lane) -> None:
+        if kind in _CLOCKED_KINDS and "clock" not in body:
+            ts = self.timebase.state()
+            body["clock"] = {"sync": ts.sync, "error_s": ts.error_s}
         # Validate now, with a stand-in seq: a message our own schema refuses is a bug, and
         # it must not roll back the block's whole outbox commit (nor stop the agent).
         try:
@@ -222,6 +228,20 @@ class EdgeSink:
 
         self._pending.append((self._topic(kind), payload, lane))
         self.counters.by_kind[kind] = self.counters.by_kind.get(kind, 0) + 1
+
+    def _clock_flags(self, arrays: tuple[Any, ...]) -> tuple[Any, ...]:
+        """Mark seconds stamped by an unsynchronised clock, or right after a clock step."""
+        bits = 0
+        if self.timebase.state().sync in ("unsynced", "holdover"):
+            bits |= FLAG_BITS["unsynced_clock"]
+        steps = int(getattr(self.timebase, "steps", 0) or 0)
+        if steps != self._steps_seen:
+            self._steps_seen = steps
+            bits |= FLAG_BITS["clock_step"]
+        if not bits:
+            return arrays
+        *values, flags = arrays
+        return (*values, np.asarray(flags) | bits)
 
     def status(
         self, state: str, *, last_ran: float | None = None, reason: str | None = None
@@ -285,6 +305,7 @@ class EdgeSink:
             got = self.seconds.add(m, final=frame.final)
             if got is not None:
                 t, arrays = got
+                arrays = self._clock_flags(arrays)
                 try:
                     bodies = self.batcher.add_many(t, *arrays)
                 except WireError as exc:  # e.g. a second seen twice after a clock step
@@ -306,8 +327,12 @@ class EdgeSink:
             self.event(update.event, update.change)
         for cap in frame.captures:
             try:
+                ts = self.timebase.state()
                 chunks = codec.capture_bodies(
-                    cap, topic=self._topic("capture"), max_packet=self.max_packet
+                    cap,
+                    topic=self._topic("capture"),
+                    max_packet=self.max_packet,
+                    clock={"sync": ts.sync, "error_s": ts.error_s},
                 )
             except WireError as exc:
                 self._refused("capture", exc)

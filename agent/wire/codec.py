@@ -458,18 +458,22 @@ def chunk_data_limit(max_packet: int, topic: str, envelope_len: int) -> int:
     return room
 
 
-def capture_bodies(capture: Capture, *, topic: str, max_packet: int = DEFAULT_MAX_PACKET
-                   ) -> list[dict[str, Any]]:
+def capture_bodies(capture: Capture, *, topic: str, max_packet: int = DEFAULT_MAX_PACKET,
+                   clock: Mapping[str, Any] | None = None) -> list[dict[str, Any]]:
     """Split a capture into chunk bodies whose PUBLISH packets (on ``topic``, once stamped
-    with any seq) stay within ``max_packet`` bytes, leaving the stated properties margin."""
+    with any seq) stay within ``max_packet`` bytes, leaving the stated properties margin.
+    ``clock`` (``{"sync": ..., "error_s": ...}``) is repeated in every chunk."""
     payload = capture_payload(capture)
     digest = hashlib.sha256(payload).hexdigest()
     meta = _capture_meta(capture)
 
     def body(index: int, total: int, data: bytes) -> dict[str, Any]:
-        return _body("capture", capture_id=capture.capture_id, event_id=capture.event_id,
-                     trigger=capture.trigger, index=index, total=total, size=len(payload),
-                     sha256=digest, data=data, meta=meta)
+        b = _body("capture", capture_id=capture.capture_id, event_id=capture.event_id,
+                  trigger=capture.trigger, index=index, total=total, size=len(payload),
+                  sha256=digest, data=data, meta=meta)
+        if clock is not None:
+            b["clock"] = dict(clock)
+        return b
 
     worst = Identity("x" * 64, "x" * 64, "x" * 64).stamp(body(99999, 100000, b""), _WORST_SEQ)
     envelope = len(msgpack.packb(worst, use_bin_type=True))
