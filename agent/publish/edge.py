@@ -185,7 +185,7 @@ class EdgeSink:
         *,
         summary_seconds: int = 60,
         max_packet_bytes: int = 256 * 1024,
-        heartbeat_s: float = 300.0,
+        heartbeat_s: float = 600.0,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.outbox = outbox

@@ -60,7 +60,7 @@ REPORT_VERSION = 1
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
 REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
-#: missed heartbeats; the edge sends one every 300 s by default).
+#: missed heartbeats; the edge sends one every 600 s by default and a summary every 60 s).
 SILENT_AFTER_S = 900.0
 #: A stored 10-min aggregate is a 10-min mean when it holds this many 10/12-cycle values:
 #: 600 s of 0.2-s intervals is 3000 at 50 or 60 Hz; 2900 leaves room for frequency
