@@ -68,6 +68,21 @@ def _retryable(exc: BaseException) -> bool:
     return sqlstate in ("40001", "40P01")
 
 
+def _set_wal(conn: sqlite3.Connection, timeout_s: float) -> None:
+    """Switch to WAL. Changing the journal mode needs an exclusive lock and SQLite may refuse
+    it at once ("database is locked") while another connection opens the same new file,
+    without waiting on the busy timeout; so retry, bounded by that timeout."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        try:
+            conn.execute("PRAGMA journal_mode=WAL")
+            return
+        except sqlite3.OperationalError as exc:
+            if "locked" not in str(exc) or time.monotonic() > deadline:
+                raise
+            time.sleep(0.02)
+
+
 class Database:
     """A single connection with dialect-aware SQL; not shared between threads.
 
@@ -82,7 +97,7 @@ class Database:
             Path(target).parent.mkdir(parents=True, exist_ok=True)
             # isolation_level=None: the module issues no implicit BEGIN/COMMIT; we do.
             conn = sqlite3.connect(target, timeout=busy_timeout_s, isolation_level=None)
-            conn.execute("PRAGMA journal_mode=WAL")
+            _set_wal(conn, busy_timeout_s)
             # FULL: a committed transaction survives power loss (WAL default NORMAL may not).
             conn.execute("PRAGMA synchronous=FULL")
             conn.execute(f"PRAGMA busy_timeout={int(busy_timeout_s * 1000)}")
