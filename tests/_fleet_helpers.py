@@ -100,6 +100,17 @@ reconnect_max_s = 1.0
 """
 
 
+# The collector's [export] table for a victoria-metrics test server (InfluxDB v2 write API).
+EXPORT = """
+[export]
+url = "{url}"
+token = "unused"
+org = "pilot"
+bucket = "halfcycle"
+precision = "ms"
+"""
+
+
 @dataclass
 class Fleet:
     root: Path

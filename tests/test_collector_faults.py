@@ -12,13 +12,14 @@ import signal
 import time
 from pathlib import Path
 
-from _fleet_helpers import CollectorThread, Fleet, make_fleet
+from _fleet_helpers import EXPORT, CollectorThread, Fleet, make_fleet
 from _mqtt_helpers import wait_for
 from _store_helpers import pg_database, schema_url
+from _tsdb_helpers import VictoriaMetrics, sample_count, victoria_metrics
 
 from agent.store.recorder import RecorderStore
 
-__all__ = ["pg_database"]  # the fixture, imported for pytest
+__all__ = ["pg_database", "victoria_metrics"]  # fixtures, imported for pytest
 
 
 def _wait_agents(fleet: Fleet, procs: list, timeout: float = 120.0) -> None:
@@ -96,15 +97,26 @@ def test_broker_sigkill_messages_are_resent_and_committed(tmp_path: Path) -> Non
         fleet.stop_all()
 
 
-def test_two_collectors_share_the_load_on_postgresql(tmp_path: Path, pg_database: str) -> None:
+def test_two_collectors_share_the_load_on_postgresql(
+    tmp_path: Path, pg_database: str, victoria_metrics: VictoriaMetrics
+) -> None:
     url = schema_url(pg_database)
     fleet = make_fleet(tmp_path, 4, duration=20.0, summary=2)
+    export = EXPORT.format(url=victoria_metrics.url)
     try:
         RecorderStore(url, tmp_path / "captures").close()  # migrate once before both start
-        with CollectorThread(fleet.collector_config("collector-1", url)) as a, \
-                CollectorThread(fleet.collector_config("collector-2", url)) as b:
+        with CollectorThread(fleet.collector_config("collector-1", url, export)) as a, \
+                CollectorThread(fleet.collector_config("collector-2", url, export)) as b:
             agents = [fleet.spawn_agent(d, speed=10.0) for d in fleet.devices]
             _wait_agents(fleet, agents)
+            # One exporter per store: the other collector stands by.
+            assert wait_for(lambda: a.collector.is_exporter or b.collector.is_exporter, 10)
+            assert a.collector.is_exporter != b.collector.is_exporter
+            series = victoria_metrics.poll_export('{__name__="hc_event_duration_s"}',
+                                                  lambda got: sample_count(got) >= 5,
+                                                  timeout_s=30)
+        # Every ended event exported once (4 dips and a swell), none twice.
+        assert sample_count(series) == 5
         # The shared subscription split the data between the two collectors.
         assert a.collector.stats.committed > 0 and b.collector.stats.committed > 0
         store = RecorderStore(url, tmp_path / "captures")

@@ -14,7 +14,7 @@ from pathlib import Path
 import comtrade
 import numpy as np
 import pytest
-from _fleet_helpers import make_fleet
+from _fleet_helpers import EXPORT, make_fleet
 from _tsdb_helpers import VictoriaMetrics, sample_count, victoria_metrics
 
 from agent.cli.main import main
@@ -24,15 +24,6 @@ from agent.settings import load_edge_settings
 from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore
 from agent.wire.codec import summary_arrays
-
-EXPORT = """
-[export]
-url = "{url}"
-token = "unused"
-org = "pilot"
-bucket = "halfcycle"
-precision = "ms"
-"""
 
 DEVICES = ("home-1", "home-2", "home-3")
 __all__ = ["victoria_metrics"]  # the fixture, imported for pytest

@@ -40,6 +40,8 @@ from agent.wire.errors import WireError
 log = structlog.get_logger("halfcycle.collect")
 
 DATA_KINDS = ("summary", "aggregate", "event", "capture", "gap")
+# PostgreSQL advisory lock held by the one collector that runs the time-series exporter.
+EXPORTER_LOCK_KEY = 0x68630001
 STATUS_KIND = "status"
 # Time fields checked against the collector's clock (messages from the future are
 # quarantined: a device with a wrong clock must not write data into next year).
@@ -194,6 +196,7 @@ class Collector:
         self._connected = threading.Event()
         self._client = self._make_client()
         self.store: RecorderStore | None = None
+        self.is_exporter = False
 
     # --- MQTT side (paho's thread) ----------------------------------------------------------
     def _make_client(self) -> mqtt.Client:
@@ -397,6 +400,8 @@ class Collector:
             self.settings.store_url, self.settings.captures_dir, keep_trend=self.settings.keep_trend
         )
         try:
+            if not self._become_the_exporter(store, stop):
+                return
             exporter = TimeSeriesExporter(
                 store, ex.url, ex.token, ex.org, ex.bucket, ex.precision
             )
@@ -404,6 +409,21 @@ class Collector:
                 exporter.run(stop)
         finally:
             store.close()
+
+    def _become_the_exporter(self, store: RecorderStore, stop: threading.Event) -> bool:
+        """One exporter per store: with several collectors on one PostgreSQL database, the
+        one holding a session advisory lock exports and the others stand by until it goes
+        away (its connection closes and the lock is released). SQLite has one collector."""
+        if store.db.dialect != "postgresql":
+            return True
+        while not stop.is_set():
+            row = store.db.query_one("SELECT pg_try_advisory_lock(?)", (EXPORTER_LOCK_KEY,))
+            if row and row[0]:
+                self.is_exporter = True
+                log.info("exporter_active", collector=self.settings.collector_id)
+                return True
+            stop.wait(5.0)
+        return False
 
     def run(self, stop: threading.Event, *, ready: threading.Event | None = None) -> None:
         cfg = self.settings.mqtt
