@@ -296,15 +296,20 @@ def _first(payload: Mapping[str, Any], *keys: str) -> Any:
     return None
 
 
+def _message_timestamp(payload: Mapping[str, Any], kind: str, precision: Precision) -> int:
+    """The message's own time (``t``, or ``t_utc`` in older payloads) as a line timestamp."""
+    t = _first(payload, "t", "t_utc")
+    if t is None:
+        raise PayloadError(kind, "missing 't'")
+    return to_timestamp(_number(t, "t", kind), precision)
+
+
 def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoint]:
     """``hc_aggregate`` points per channel and an ``hc_aggregate_device`` point (frequency)
     for one ``aggregate`` message (schemas/aggregate.schema.json)."""
     kind = "aggregate"
     site, device = _ident(payload, "site", kind), _ident(payload, "device", kind)
-    t = _first(payload, "t", "t_utc")
-    if t is None:
-        raise PayloadError(kind, "missing 't'")
-    ts = to_timestamp(_number(t, "t", kind), precision)
+    ts = _message_timestamp(payload, kind, precision)
     names = _channels(payload, kind)
     rms_raw = payload.get("rms") or []
     rms = _channel_values(payload, "rms", len(names), kind) if rms_raw else [None] * len(names)
@@ -454,10 +459,7 @@ def status_points(payload: Mapping[str, Any], precision: Precision) -> list[Line
     """One ``hc_status`` point for one ``status`` message (schemas/status.schema.json)."""
     kind = "status"
     site, device = _ident(payload, "site", kind), _ident(payload, "device", kind)
-    t = _first(payload, "t", "t_utc")
-    if t is None:
-        raise PayloadError(kind, "missing 't'")
-    ts = to_timestamp(_number(t, "t", kind), precision)
+    ts = _message_timestamp(payload, kind, precision)
     state = payload.get("state")
     if state not in DEVICE_STATES:
         raise PayloadError(kind, f"state must be one of {sorted(DEVICE_STATES)}, got {state!r}")
@@ -480,17 +482,14 @@ def gap_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoi
     """One ``hc_gap`` point: messages the edge dropped (schemas/gap.schema.json)."""
     kind = "gap"
     site, device = _ident(payload, "site", kind), _ident(payload, "device", kind)
-    t = _first(payload, "t", "t_utc")
-    if t is None:
-        raise PayloadError(kind, "missing 't'")
+    ts = _message_timestamp(payload, kind, precision)
     values = {}
     for key in ("count", "first_seq", "last_seq"):
         v = _req(payload, key, kind)
         if isinstance(v, bool) or not isinstance(v, int):
             raise PayloadError(kind, f"{key} must be an integer")
         values[key] = v
-    return [LinePoint("hc_gap", (("device", device), ("site", site)), _fields(**values),
-                      to_timestamp(_number(t, "t", kind), precision))]
+    return [LinePoint("hc_gap", (("device", device), ("site", site)), _fields(**values), ts)]
 
 
 def no_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoint]:
