@@ -6,7 +6,7 @@ the code only evaluates it, and :func:`boundary_table_markdown` renders it for t
 
 Schemes
 -------
-- ``ieee1159``: IEEE 1159 category and duration class (1995/2009 tables; 2019 definitions).
+- ``ieee1159``: IEEE 1159 category and duration class (IEEE 1159-2009 Table 2).
   Which row applies follows the magnitude: a dip whose residual is below 0.1 pu is an
   interruption in IEEE 1159 terms even if the detector (EN 50160 5 % threshold) called it a
   dip. Where the table has no category the result is ``unclassified``.
@@ -37,7 +37,7 @@ from typing import Any, Literal
 
 from agent.events.types import Event
 
-CLASSIFIER_VERSION = "1.0.0"
+CLASSIFIER_VERSION = "1.1.0"  # 1.1: IEEE 1159 upper bounds kept; dip duration for dip tables
 
 Direction = Literal["low", "high"]
 _EPS = 1e-6
@@ -113,6 +113,9 @@ def _r(scheme: str, direction: Direction, duration: str, magnitude: str, outcome
 
 
 _1159 = "IEEE 1159-2009 Table 2 (pub)"
+# The table writes 30 cycles in both the instantaneous and the momentary row; read like its
+# explicit "> 3 s" and "> 1 min": the shorter class keeps its upper bound.
+_1159_30 = _1159 + "; exactly 30 cyc read as instantaneous (project reading of the table)"
 _ITIC = "ITIC curve, 2000 revision (pub)"
 _F47 = "SEMI F47 (pub)"
 _EN = "IEC 61000-2-8 / EN 50160 dip table (pub)"
@@ -123,30 +126,34 @@ _ANY = "[0, inf)"
 #: Every boundary the classifier uses. First matching rule of a scheme wins. ``[``/``]`` =
 #: bound included, ``(``/``)`` = excluded. Units: cyc (cycles of nominal_hz), ms, s; pu.
 BOUNDARY_RULES: tuple[Rule, ...] = (
-    # IEEE 1159: interruptions (there is no instantaneous interruption)
-    _r("ieee1159", "low", "[0.5 cyc, 3 s)", "[0, 0.1)", "interruption", "momentary", None, _1159),
-    _r("ieee1159", "low", "[3 s, 60 s]", "[0, 0.1)", "interruption", "temporary", None, _1159),
+    # IEEE 1159: interruptions (there is no instantaneous interruption). Each class keeps its
+    # upper bound: the table writes "> 3 s - 1 min" and "> 1 min".
+    _r("ieee1159", "low", "[0.5 cyc, 3 s]", "[0, 0.1)", "interruption", "momentary", None, _1159),
+    _r("ieee1159", "low", "(3 s, 60 s]", "[0, 0.1)", "interruption", "temporary", None, _1159),
     _r("ieee1159", "low", "(60 s, inf)", "[0, 0.1)", "interruption", "sustained", None,
        _1159 + "; table gives 0.0 pu, < 0.1 pu accepted as measured zero (common practice)"),
     # IEEE 1159: sags and undervoltage
-    _r("ieee1159", "low", "[0.5 cyc, 30 cyc)", "[0.1, 0.9)", "sag", "instantaneous", None, _1159),
-    _r("ieee1159", "low", "[30 cyc, 3 s)", "[0.1, 0.9)", "sag", "momentary", None, _1159),
-    _r("ieee1159", "low", "[3 s, 60 s]", "[0.1, 0.9)", "sag", "temporary", None, _1159),
+    _r("ieee1159", "low", "[0.5 cyc, 30 cyc]", "[0.1, 0.9)", "sag", "instantaneous", None,
+       _1159_30),
+    _r("ieee1159", "low", "(30 cyc, 3 s]", "[0.1, 0.9)", "sag", "momentary", None, _1159_30),
+    _r("ieee1159", "low", "(3 s, 60 s]", "[0.1, 0.9)", "sag", "temporary", None, _1159),
     _r("ieee1159", "low", "(60 s, inf)", "[0.8, 0.9)", "undervoltage", "sustained", None, _1159),
     # IEEE 1159: swells and overvoltage
-    _r("ieee1159", "high", "[0.5 cyc, 30 cyc)", "(1.1, 1.8]", "swell", "instantaneous", None,
-       _1159),
-    _r("ieee1159", "high", "[30 cyc, 3 s)", "(1.1, 1.4]", "swell", "momentary", None, _1159),
-    _r("ieee1159", "high", "[3 s, 60 s]", "(1.1, 1.2]", "swell", "temporary", None, _1159),
+    _r("ieee1159", "high", "[0.5 cyc, 30 cyc]", "(1.1, 1.8]", "swell", "instantaneous", None,
+       _1159_30),
+    _r("ieee1159", "high", "(30 cyc, 3 s]", "(1.1, 1.4]", "swell", "momentary", None, _1159_30),
+    _r("ieee1159", "high", "(3 s, 60 s]", "(1.1, 1.2]", "swell", "temporary", None, _1159),
     _r("ieee1159", "high", "(60 s, inf)", "(1.1, 1.2]", "overvoltage", "sustained", None, _1159),
     # IEEE 1159 duration class alone, for events the category table leaves unclassified
-    _r("ieee1159_duration", "low", "[0.5 cyc, 30 cyc)", _ANY, "instantaneous", "", None, _1159),
-    _r("ieee1159_duration", "low", "[30 cyc, 3 s)", _ANY, "momentary", "", None, _1159),
-    _r("ieee1159_duration", "low", "[3 s, 60 s]", _ANY, "temporary", "", None, _1159),
+    _r("ieee1159_duration", "low", "[0.5 cyc, 30 cyc]", _ANY, "instantaneous", "", None,
+       _1159_30),
+    _r("ieee1159_duration", "low", "(30 cyc, 3 s]", _ANY, "momentary", "", None, _1159_30),
+    _r("ieee1159_duration", "low", "(3 s, 60 s]", _ANY, "temporary", "", None, _1159),
     _r("ieee1159_duration", "low", "(60 s, inf)", _ANY, "sustained", "", None, _1159),
-    _r("ieee1159_duration", "high", "[0.5 cyc, 30 cyc)", _ANY, "instantaneous", "", None, _1159),
-    _r("ieee1159_duration", "high", "[30 cyc, 3 s)", _ANY, "momentary", "", None, _1159),
-    _r("ieee1159_duration", "high", "[3 s, 60 s]", _ANY, "temporary", "", None, _1159),
+    _r("ieee1159_duration", "high", "[0.5 cyc, 30 cyc]", _ANY, "instantaneous", "", None,
+       _1159_30),
+    _r("ieee1159_duration", "high", "(30 cyc, 3 s]", _ANY, "momentary", "", None, _1159_30),
+    _r("ieee1159_duration", "high", "(3 s, 60 s]", _ANY, "temporary", "", None, _1159),
     _r("ieee1159_duration", "high", "(60 s, inf)", _ANY, "sustained", "", None, _1159),
     # ITIC 2000, lower curve (RMS part); on the curve counts as inside
     _r("itic", "low", "[0 s, 20 ms]", _ANY, "no_interruption", "", None, _ITIC),
@@ -195,6 +202,31 @@ BOUNDARY_RULES: tuple[Rule, ...] = (
 
 _KIND_DIRECTION: dict[str, Direction] = {"dip": "low", "interruption": "low", "swell": "high"}
 
+#: Which duration each scheme judges a dip or an interruption on. ``event``: the event's own
+#: duration (for an interruption, the time below the interruption threshold); ``dip``: the
+#: duration below the dip threshold (dip threshold to threshold + hysteresis, the enclosing
+#: period of an interruption). Swells always use their own duration.
+#:
+#: - IEEE 1159-2009 Table 2 (pub): an interruption's class is the time the voltage stays
+#:   below 0.1 pu ("interruption ... < 0.1 pu" with its own duration column): ``event``.
+#: - IEC 61000-2-8 / EN 50160 dip table (pub): the 5 > u row holds the dips whose residual
+#:   fell below 5 %, with the dip's duration (IEC 61000-4-30 Ed.3 cl. 5.4: below the dip
+#:   threshold until threshold + hysteresis): ``dip``.
+#: - IEEE 1564-2014 (from memory): an event is characterised by its residual voltage and the
+#:   duration below the dip threshold; Se and the curve-based indices (SARFI-ITIC, -SEMI)
+#:   use that pair: ``dip`` for ``ieee1564_curve``, ``itic`` and ``semi_f47``.
+DURATION_BASIS: dict[str, Literal["event", "dip"]] = {
+    "ieee1159": "event",
+    "ieee1159_duration": "event",
+    "itic": "dip",
+    "semi_f47": "dip",
+    "en50160_dip.row": "dip",
+    "en50160_dip.column": "dip",
+    "en50160_swell.row": "event",
+    "en50160_swell.column": "event",
+    "ieee1564_curve": "dip",
+}
+
 
 def _match(scheme: str, direction: Direction, level_pu: float, duration_s: float,
            hz: float) -> Rule | None:
@@ -212,6 +244,7 @@ def classify(
     duration_s: float,
     nominal_hz: float,
     sag_energy_s: float | None = None,
+    dip_duration_s: float | None = None,
 ) -> dict[str, Any]:
     """Classify one RMS event.
 
@@ -219,32 +252,43 @@ def classify(
     ----------
     event_kind : str  ``dip``, ``interruption`` or ``swell``
     level_pu : float  [pu of Udin] residual (dips, interruptions) or maximum (swells)
-    duration_s : float  [s]
+    duration_s : float  [s] the event's own duration (an interruption's: below the
+        interruption threshold)
     nominal_hz : float  [Hz] for the cycle-based IEEE 1159 bounds
     sag_energy_s : float, optional  [s] passed through (IEEE 1564 voltage-sag energy)
+    dip_duration_s : float, optional  [s] duration below the dip threshold (an interruption's
+        enclosing period); default ``duration_s``. Which scheme uses which:
+        :data:`DURATION_BASIS`.
 
     Returns
     -------
     dict with ``ieee1159_category``, ``ieee1159_duration_class``, ``itic_region``,
     ``semi_f47``, ``en50160_dip_cell`` / ``_row`` / ``_column``, ``en50160_swell_cell`` /
-    ``_row`` / ``_column``, ``ieee1564_severity``, ``sag_energy_s``, ``classifier_version``.
+    ``_row`` / ``_column``, ``ieee1564_severity``, ``sag_energy_s``, ``classifier_version``,
+    and the two durations it judged on, ``event_duration_s`` and ``dip_duration_s`` (None for
+    swells).
 
     References
     ----------
-    IEEE 1159-2019; ITIC curve (2000); SEMI F47; IEC 61000-2-8 / EN 50160; IEEE 1564-2014.
+    IEEE 1159-2009 Table 2; ITIC curve (2000); SEMI F47; IEC 61000-2-8 / EN 50160;
+    IEEE 1564-2014.
     """
     direction = _KIND_DIRECTION.get(event_kind)
     if direction is None:
         raise ValueError(f"event_kind must be dip, interruption or swell; got {event_kind!r}")
-    for name, v in (("level_pu", level_pu), ("duration_s", duration_s)):
+    if dip_duration_s is None or direction == "high":
+        dip_duration_s = duration_s
+    for name, v in (("level_pu", level_pu), ("duration_s", duration_s),
+                    ("dip_duration_s", dip_duration_s)):
         if not (isinstance(v, int | float) and math.isfinite(v) and v >= 0):
             raise ValueError(f"{name} must be a finite number >= 0, got {v!r}")
     if not (isinstance(nominal_hz, int | float) and nominal_hz > 0):
         raise ValueError(f"nominal_hz must be > 0, got {nominal_hz!r}")
     hz = float(nominal_hz)
+    durations = {"event": duration_s, "dip": dip_duration_s}
 
     def find(scheme: str) -> Rule | None:
-        return _match(scheme, direction, level_pu, duration_s, hz)
+        return _match(scheme, direction, level_pu, durations[DURATION_BASIS[scheme]], hz)
 
     cat = find("ieee1159")
     dur = find("ieee1159_duration")
@@ -269,6 +313,8 @@ def classify(
         (1.0 - level_pu) / (1.0 - curve.value) if curve and curve.value is not None else None
     )
     out["sag_energy_s"] = sag_energy_s if direction == "low" else None
+    out["event_duration_s"] = duration_s
+    out["dip_duration_s"] = dip_duration_s if direction == "low" else None
     return out
 
 
@@ -277,8 +323,9 @@ def classify_event(event: Event, nominal_hz: float) -> dict[str, Any]:
     duration = event.duration_s
     if duration is None:
         raise ValueError(f"event {event.event_id} is still open: no duration to classify")
+    dip = event.dip_duration_s
     result = classify(event.kind, event.level_pu, max(0.0, duration), nominal_hz,
-                      event.sag_energy_s)
+                      event.sag_energy_s, None if dip is None else max(0.0, dip))
     event.classification = result
     return result
 
@@ -286,8 +333,8 @@ def classify_event(event: Event, nominal_hz: float) -> dict[str, Any]:
 def boundary_table_markdown() -> str:
     """:data:`BOUNDARY_RULES` as a markdown table (``[``/``]`` included, ``(``/``)`` not)."""
     lines = [
-        "| scheme | event | duration | magnitude [pu] | result | source |",
-        "|---|---|---|---|---|---|",
+        "| scheme | event | duration | magnitude [pu] | result | duration taken | source |",
+        "|---|---|---|---|---|---|---|",
     ]
     for r in BOUNDARY_RULES:
         result = r.outcome
@@ -296,6 +343,8 @@ def boundary_table_markdown() -> str:
         if r.value is not None:
             result += f" = {r.value:g} pu"
         event = "dip / interruption" if r.direction == "low" else "swell"
+        basis = ("below dip threshold" if r.direction == "low"
+                 and DURATION_BASIS[r.scheme] == "dip" else "event's own")
         lines.append(f"| {r.scheme} | {event} | {r.duration.text} | {r.magnitude.text} | "
-                     f"{result} | {r.source} |")
+                     f"{result} | {basis} | {r.source} |")
     return "\n".join(lines) + "\n"

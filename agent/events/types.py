@@ -37,8 +37,10 @@ class Event:
     Times are sample indices of the raw signal (``start``, ``end``) plus UTC seconds
     (``start_utc``, ``end_utc``) from the timebase. ``level_v`` is the residual voltage
     (lowest Urms(1/2) on any involved channel) for dips and interruptions and the maximum for
-    swells [V]; ``level_pu`` is that over Udin. For an interruption, ``enclosing_*`` describe
-    the below-dip-threshold period that contains it. ``sag_energy_s`` is the voltage-sag
+    swells [V]; ``level_pu`` is that over Udin. For an interruption, ``start``/``end`` and
+    ``duration_s`` are the interruption's own (below the interruption threshold) and
+    ``enclosing_*`` describe the below-dip-threshold period that contains it
+    (``dip_duration_s``). ``sag_energy_s`` is the voltage-sag
     energy ∫(1-(U/Udin)²)dt [s] (IEEE 1564-2014) over the event, None for swells.
     ``end_uncertainty_s`` is set when the end had to be inferred (power loss).
     """
@@ -76,6 +78,19 @@ class Event:
         if self.end_utc is None:
             return None
         return self.end_utc - self.start_utc
+
+    @property
+    def dip_duration_s(self) -> float | None:
+        """Duration below the dip threshold [s]: a dip's own duration, an interruption's
+        enclosing period (dip threshold to threshold + hysteresis, IEC 61000-4-30 Ed.3
+        cl. 5.4); None for swells and while unknown. The EN 50160 dip table and IEEE 1564
+        judge on it; IEEE 1159 judges an interruption on its own ``duration_s``
+        (:data:`agent.events.classify.DURATION_BASIS`)."""
+        if self.kind == "dip":
+            return self.duration_s
+        if self.kind == "interruption":
+            return self.enclosing_duration_s
+        return None
 
     @property
     def level_pu(self) -> float:
