@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import struct
+from functools import partial
 from typing import Any
 
 import msgpack
@@ -21,6 +22,7 @@ from _wire_helpers import (
 
 from agent.measurement.types import Aggregate
 from agent.wire.codec import (
+    SCHEMA_VERSIONS,
     Identity,
     aggregate_body,
     aggregate_from_message,
@@ -41,7 +43,7 @@ def test_every_message_type_round_trips(kind: str) -> None:
     msg = sample_messages()[kind]
     back = decode(encode(msg))
     assert back == msg  # msgpack preserves ints, floats (float64), str, bytes exactly
-    assert back["type"] == kind and back["v"] == 1
+    assert back["type"] == kind and back["v"] == SCHEMA_VERSIONS.get(kind, 1)
 
 
 def test_identity_is_on_every_device_message() -> None:
@@ -198,8 +200,8 @@ def test_nan_in_msgpack_float32_is_rejected() -> None:
 
 
 def test_unknown_version_and_type_are_rejected() -> None:
-    err = _reason(_with("event", v=2))
-    assert err.code == "unknown_version" and "v=1" in err.reason
+    err = _reason(_with("event", v=3))
+    assert err.code == "unknown_version" and "v=1, 2" in err.reason
     assert _reason(_with("event", v=True)).code == "unknown_version"  # bool is not 1
     assert _reason(_with("event", type="telemetry")).code == "unknown_type"
 
@@ -271,3 +273,22 @@ def test_summary_bodies_helper_covers_a_day_shape() -> None:
     # the helper the benchmark uses).
     bodies = summary_bodies(3600, 1)
     assert len(bodies) == 60 and all(b["n"] == 60 for b in bodies)
+
+
+def test_older_versions_stay_valid_and_v2_fields_are_checked() -> None:
+    # An event v1 message (no dip_duration_s) from an older agent is still read; a v2 one
+    # must carry dip_duration_s (agent.wire.validate, semantic check; DEVELOPERS.md "Adding a
+    # measurement": bump v, keep older messages valid).
+    ev = sample_messages()["event"]
+    assert ev["v"] == 2 and "dip_duration_s" in ev
+    old = {k: v for k, v in ev.items() if k != "dip_duration_s"}
+    pack = partial(msgpack.packb, use_bin_type=True)
+    assert decode(pack({**old, "v": 1}))["v"] == 1
+    err = _reason(pack({**old, "v": 2}))
+    assert err.code == "semantic" and "dip_duration_s" in err.reason
+    assert decode(pack({**ev, "v": 1}))["dip_duration_s"] == ev["dip_duration_s"]
+    status = sample_messages()["status"]
+    assert decode(pack({**status, "v": 1}))["v"] == 1
+    assert decode(pack({**status, "last_stop": "planned", "thd_max_order": 25}))["v"] == 2
+    assert _reason(pack({**status, "last_stop": "maybe"})).code == "schema"
+    assert _reason(pack({**status, "thd_max_order": 51})).code == "schema"

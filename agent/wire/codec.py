@@ -38,6 +38,9 @@ from agent.wire.topics import check_id, parse_topic
 from agent.wire.validate import validate
 
 SCHEMA_VERSION = 1
+# Message kinds whose current schema version is newer than 1 (schemas/*.schema.json ``v``):
+# event v2 adds ``dip_duration_s``; status v2 adds ``last_stop`` and ``thd_max_order``.
+SCHEMA_VERSIONS: dict[str, int] = {"event": 2, "status": 2}
 F64 = npt.NDArray[np.float64]
 
 # Largest message decode() accepts by default [bytes]; capture chunks are bounded by the MQTT
@@ -143,7 +146,7 @@ def decode_from_topic(topic: str, data: bytes, *,
 
 
 def _body(msg_type: str, /, **fields: Any) -> dict[str, Any]:
-    return {"v": SCHEMA_VERSION, "type": msg_type, **fields}
+    return {"v": SCHEMA_VERSIONS.get(msg_type, SCHEMA_VERSION), "type": msg_type, **fields}
 
 
 def _opt_float(x: float | None, what: str) -> float | None:
@@ -283,6 +286,7 @@ def event_body(
         enclosing_duration_s=_opt_float(event.enclosing_duration_s, "enclosing_duration_s"),
         enclosing_level_v=_opt_float(event.enclosing_level_v, "enclosing_level_v"),
         enclosing_start_utc=_opt_float(event.enclosing_start_utc, "enclosing_start_utc"),
+        dip_duration_s=_opt_float(event.dip_duration_s, "dip_duration_s"),
         partial_outage=bool(event.partial_outage),
         sag_energy_s=_opt_float(event.sag_energy_s, "sag_energy_s"),
         ended_by=event.ended_by,
@@ -357,10 +361,14 @@ def status_body(
     reason: str | None = None,
     outbox_lanes: Mapping[str, int] | None = None,
     site_model: Mapping[str, Any] | None = None,
+    last_stop: str | None = None,
+    thd_max_order: int | None = None,
 ) -> dict[str, Any]:
     """``state`` is online, offline or heartbeat; ``last_ran`` the UTC time the agent last ran
     before this start (restart reports); ``t`` defaults to now; ``site_model`` the device's
-    :class:`agent.site.Site` fields (see :func:`site_model_body`)."""
+    :class:`agent.site.Site` fields (see :func:`site_model_body`); ``last_stop`` how that run
+    ended (``planned``: a clean stop, ``unplanned``: anything else); ``thd_max_order`` the
+    highest harmonic order the device's THD covers (below 40 when the sample rate caps it)."""
     body = _body(
         "status", state=state, t=_req_float(time.time() if t is None else t, "t"),
         agent_version=agent_version, uptime_s=_req_float(uptime_s, "uptime_s"),
@@ -373,6 +381,10 @@ def status_body(
         body["outbox_lanes"] = {str(k): int(v) for k, v in outbox_lanes.items()}
     if site_model is not None:
         body["site_model"] = dict(site_model)
+    if last_stop is not None:
+        body["last_stop"] = last_stop
+    if thd_max_order is not None:
+        body["thd_max_order"] = int(thd_max_order)
     return body
 
 

@@ -695,7 +695,9 @@ class Validator:
     def __init__(self, folder: Path | None = None) -> None:
         folder = folder or schemas_dir()
         self.schemas: dict[str, dict[str, Any]] = {}
-        self.versions: dict[str, int] = {}
+        # Every schema version a kind accepts (``v``: a const, or an enum of ints when a newer
+        # version only added optional fields, so older messages stay valid).
+        self.versions: dict[str, tuple[int, ...]] = {}
         self._checks: dict[str, Check] = {}
         self._strict: dict[str, Check] = {}
         self._ok: dict[str, Pred] = {}
@@ -709,13 +711,17 @@ class Validator:
                 schema = json.loads(f.read_text(encoding="utf-8"))
             except json.JSONDecodeError as exc:
                 raise SchemaLoadError(f"{f}: not valid JSON: {exc}") from None
-            v = schema.get("properties", {}).get("v", {}).get("const")
+            vnode = schema.get("properties", {}).get("v", {})
+            vs = [vnode["const"]] if "const" in vnode else vnode.get("enum")
             t = schema.get("properties", {}).get("type", {}).get("const")
-            if not isinstance(v, int) or t != kind:
+            if (not isinstance(vs, list) or not vs
+                    or not all(isinstance(x, int) and not isinstance(x, bool) for x in vs)
+                    or t != kind):
                 raise SchemaLoadError(
-                    f"{f}: needs properties.v.const (int) and type.const {kind!r}")
+                    f"{f}: needs properties.v.const (int) or .enum (ints) and type.const "
+                    f"{kind!r}")
             self.schemas[kind] = schema
-            self.versions[kind] = v
+            self.versions[kind] = tuple(sorted(vs))
             self._checks[kind] = _Compiler(schema, f.name, strict_int=False).compile(schema)
             self._strict[kind] = _Compiler(schema, f.name, strict_int=True).compile(schema)
             self._ok[kind] = _Compiler(schema, f.name, strict_int=False).predicate(schema)
@@ -741,9 +747,10 @@ class Validator:
         v = msg.get("v")
         if "v" not in msg:
             raise WireError("$: missing required property 'v'", "schema")
-        if isinstance(v, bool) or not isinstance(v, int) or v != self.versions[kind]:
+        if isinstance(v, bool) or not isinstance(v, int) or v not in self.versions[kind]:
+            reads = ", ".join(str(x) for x in self.versions[kind])
             raise WireError(f"$.v: unsupported schema version {_describe(v)} for {kind} "
-                            f"(this build reads v={self.versions[kind]})", "unknown_version")
+                            f"(this build reads v={reads})", "unknown_version")
         try:
             ok = (self._strict_ok if semantic else self._ok)[kind](msg)
             if not ok:
@@ -915,6 +922,8 @@ def _semantic_event(msg: dict[str, Any], schema: dict[str, Any]) -> None:
     names = msg.get("channel_names")
     if names is not None and len(names) != len(msg["channels"]):
         raise WireError("$.channel_names: length differs from channels", "semantic")
+    if msg["v"] >= 2 and "dip_duration_s" not in msg:  # v2 always sends it (null if unknown)
+        raise WireError("$.dip_duration_s: required from event v2 on", "semantic")
 
 
 def _semantic_aggregate(msg: dict[str, Any], schema: dict[str, Any]) -> None:
