@@ -9,8 +9,10 @@ from hypothesis import strategies as st
 
 from agent.acquisition.base import Block, SourceInfo
 from agent.acquisition.timebase import ReplayTimebase
+from agent.events.detector import EventDetector
 from agent.events.types import Thresholds
 from agent.measurement.engine import MeasurementEngine
+from agent.measurement.types import HalfCycleRms
 from agent.site import Site
 from tests._measurement_helpers import Adc, Result, make_engine, phase_of, run, wave
 
@@ -171,6 +173,37 @@ def test_dip_flags_intervals_and_aggregates() -> None:
     assert threes[0].flagged                                    # 1.0 s lies in the 1st group
     assert len(threes) >= 2 and all(not a.flagged for a in threes[1:])
     assert r.aggs("10min")[0].flagged and r.aggs("10s")[0].flagged
+
+
+def test_flag_covers_the_hysteresis_tail_of_an_open_event() -> None:
+    # Invented: 230 V 50 Hz, a dip to 0.5 pu at 1.0-1.1 s that recovers only to 0.91 pu (above
+    # the 90 % dip threshold, below threshold + 2 % hysteresis) until 2.5 s, then 1.0 pu.
+    # IEC 61000-4-30 Ed.3 cl. 5.4: the dip lasts until every channel is at or above threshold
+    # + hysteresis; cl. 4.7: every interval it overlaps is flagged (tail included).
+    n = int(FS * 4)
+    x = wave(phase_of(FS, n, 50.0), 325.0)
+    d0, tail, d1 = int(1.0 * FS), int(1.1 * FS), int(2.5 * FS)
+    x[d0:tail] *= 0.5
+    x[tail:d1] *= 0.91
+    counts = np.round(x / 0.02).astype(np.int16)[:, None]
+    results = [run(make_engine(FS, 230, 50, 1, 0.02), counts, b) for b in (777, 10**9)]
+    _assert_same(results)  # common practice: the block size changes nothing
+    r = results[-1]
+    # The detector's own event over the engine's Urms(1/2) values (agent.events.detector).
+    det = EventDetector(230.0, 1, Thresholds(), ReplayTimebase(FS))
+    half = HalfCycleRms(r.start, r.end, r.urms, r.synthetic)
+    (ev,) = [u.event for u in det.update(half) if u.change == "ended"]
+    assert ev.kind == "dip" and ev.end is not None
+    assert ev.end > d1 - FS / 50  # it lasted through the 0.91 pu tail
+    overlaps = (r.iv_start < ev.end) & (r.iv_end > ev.start)
+    assert overlaps.sum() >= 7  # 1.5 s of 10-cycle (0.2 s) intervals
+    assert r.iv_flagged[overlaps].all()  # the tail too, not only the part below 90 %
+    margin = FS / 50  # one cycle: the Urms(1/2) window reach
+    clear = (r.iv_end < ev.start - margin) | (r.iv_start > ev.end + margin)
+    assert clear.any() and not r.iv_flagged[clear].any()
+    # 150-cycle aggregates (3 s, clock aligned): 0-3 s holds the event, 3-4 s does not.
+    threes = r.aggs("3s")
+    assert threes[0].flagged and not any(a.flagged for a in threes[1:])
 
 
 def test_clipping_flatline_and_gap_flags() -> None:

@@ -29,6 +29,7 @@ from agent.measurement.conditioning import (
     boxcar_gain,
     boxcar_lengths,
 )
+from agent.measurement.flagging import event_window_flags
 from agent.measurement.frequency import whole_cycles
 from agent.measurement.harmonics import (
     max_harmonic_order,
@@ -165,6 +166,10 @@ class MeasurementEngine:
         self._quality = QualityMonitor(c, info.adc_bits, chunk, nominal_peak / self.scale)
         self._dip_v = thresholds.dip * site.nominal_v
         self._swell_v = thresholds.swell * site.nominal_v
+        # Flags follow the detector's events, hysteresis tail included (agent.measurement.flagging).
+        self._dip_end_v = (thresholds.dip + thresholds.hysteresis) * site.nominal_v
+        self._swell_end_v = (thresholds.swell - thresholds.hysteresis) * site.nominal_v
+        self._in_dip = self._in_swell = False
         self._next: int | None = None
         # Aggregations survive gaps.
         self._g3: list[tuple[float, float, F64, F64, bool]] = []
@@ -402,7 +407,9 @@ class MeasurementEngine:
         syn = self._cx_syn
         synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
         synthetic |= syn[lo + 2:hi + 2]
-        flagged = np.asarray(((urms < self._dip_v) | (urms > self._swell_v)).any(axis=1))
+        flagged, self._in_dip, self._in_swell = event_window_flags(
+            urms, self._dip_v, self._dip_end_v, self._swell_v, self._swell_end_v,
+            self._in_dip, self._in_swell)
         self._cx_wflag[lo:hi] = flagged
         out.hc.append((a.copy(), b.copy(), urms, synthetic))
         self._feed_freq(out, self._cx_utc[lo:hi], synthetic, flagged)
