@@ -14,6 +14,7 @@ from agent.collect.outages import (
     OutageWindow,
     device_outage_windows,
     last_gasp_window,
+    planned_stop_window,
     presence_from_status,
     restart_window,
     site_outages,
@@ -25,9 +26,11 @@ KEEPALIVE = 60.0
 
 
 def status(device: str, state: str, t: float, *, last_ran: float | None = None,
-           uptime_s: float = 0.0, site: str = "block-a") -> dict[str, Any]:
+           uptime_s: float = 0.0, site: str = "block-a",
+           last_stop: str | None = None) -> dict[str, Any]:
     body = status_body(state, agent_version="0.1", uptime_s=uptime_s, outbox_depth=0,
-                       sync="synced", time_error_s=0.001, last_ran=last_ran, t=t)
+                       sync="synced", time_error_s=0.001, last_ran=last_ran, t=t,
+                       last_stop=last_stop)
     return {**body, "device": device, "site": site, "epoch": "ep", "seq": 1}
 
 
@@ -79,6 +82,34 @@ def test_restart_report_gives_the_window() -> None:
     # last_ran → t - uptime_s: the agent's own start
     assert (w.start_utc, w.end_utc, w.sources) == (T0, T0 + 300.0, ("restart_report",))
     assert restart_window(status("d1", "online", T0)) is None  # first start ever: no last_ran
+
+
+def test_planned_restart_is_no_outage() -> None:
+    # Issue 7 item 5 (invented): a clean stop at T0, start again 300 s later. The agent says
+    # last_stop = planned: no outage window, neither alone nor with the site.
+    planned = status("d1", "online", T0 + 305.0, last_ran=T0, uptime_s=5.0,
+                     last_stop="planned")
+    assert restart_window(planned) is None
+    assert device_outage_windows([planned], []) == []
+    w = planned_stop_window(planned)
+    assert w is not None and (w.start_utc, w.end_utc, w.sources) == (
+        T0, T0 + 300.0, ("planned_stop",))
+    # The same silence without a planned stop (a crash, a kill, a power cut) is an outage.
+    unplanned = status("d1", "online", T0 + 305.0, last_ran=T0, uptime_s=5.0,
+                       last_stop="unplanned")
+    assert restart_window(unplanned) is not None and planned_stop_window(unplanned) is None
+    assert restart_window(restart("d1", T0, T0 + 300.0)) is not None  # v1: no last_stop
+    # Two of three homes restarted on purpose, one lost power: no site outage (more than
+    # half out at once is needed, rule 3).
+    msgs = [status(d, "online", T0 + 305.0, last_ran=T0, uptime_s=5.0, last_stop="planned")
+            for d in ("d1", "d2")] + [restart("d3", T0, T0 + 300.0)]
+    windows = device_outage_windows(msgs, [])
+    assert [w.device for w in windows] == ["d3"]
+    assert site_outages(windows, {"block-a": 3}) == []
+    # A planned restart with a power-loss event in it still shows the power loss.
+    gasp = last_gasp("d1", T0 - 2.0, T0 - 1.0)
+    (lost,) = device_outage_windows([planned], [gasp])
+    assert lost.sources == ("last_gasp",)
 
 
 def test_restart_before_last_ran_is_a_clear_error_or_skipped() -> None:

@@ -155,6 +155,23 @@ def test_heartbeat_survives_reopen(tmp_path: Path) -> None:
     assert _open(tmp_path).previous_run == 1234.5
 
 
+
+def test_planned_stop_is_remembered_until_the_next_run_heartbeats(tmp_path: Path) -> None:
+    # Issue 7 item 5: a clean stop marks itself; the next start reads "planned". Any run
+    # after it (its heartbeat) turns the mark stale, so a later crash reads "unplanned".
+    ob = _open(tmp_path)
+    assert ob.previous_stop is None  # first start ever
+    ob.heartbeat(now=100.0)
+    ob.mark_planned_stop(now=200.0)
+    ob.close()
+    again = _open(tmp_path)
+    assert (again.previous_run, again.previous_stop) == (200.0, "planned")
+    again.heartbeat(now=300.0)  # the next run started (and then died without a clean stop)
+    again.close()
+    third = _open(tmp_path)
+    assert (third.previous_run, third.previous_stop) == (300.0, "unplanned")
+    third.close()
+
 def test_two_writers_share_one_counter(tmp_path: Path) -> None:
     # SQLite WAL + BEGIN IMMEDIATE: two connections never hand out the same seq
     a, b = _open(tmp_path), _open(tmp_path)

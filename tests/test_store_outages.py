@@ -183,3 +183,23 @@ def test_version_1_database_migrates_and_backfills_windows(store_url: str,
         assert new.count("outage_windows") == 2
         new.commit_batch([restart_report(1, last_ran=T0, t=T0 + 20.0, uptime_s=10.0)])
         assert new.count("outage_windows") == 3
+
+
+def test_planned_restart_is_stored_but_makes_no_window(store: RecorderStore) -> None:
+    # Issue 7 item 5 (invented): the agent stops cleanly (its own sequenced offline status
+    # with reason planned_stop), then starts again and says last_stop = planned.
+    store.commit_batch([msg("status", 1, state="offline", t=T0, uptime_s=3600.0,
+                            reason="planned_stop", agent_version="0.1", outbox_depth=0,
+                            last_ran=None)])
+    (dev,) = store.devices()
+    assert dev["state"] == "offline" and dev["status"]["reason"] == "planned_stop"
+    store.commit_batch([restart_report(2, last_ran=T0 + 1.0, t=T0 + 130.0, uptime_s=10.0,
+                                       last_stop="planned", v=2)])
+    assert store.outage_windows() == [] and store.site_outages() == []
+    (dev,) = store.devices()
+    assert dev["state"] == "online" and dev["status"]["last_stop"] == "planned"
+    # The same silence after an unplanned stop (crash, kill, power cut) is an outage window.
+    store.commit_batch([restart_report(3, last_ran=T0 + 200.0, t=T0 + 330.0, uptime_s=10.0,
+                                       last_stop="unplanned", v=2)])
+    (w,) = store.outage_windows()
+    assert (w.start_utc, w.end_utc, w.sources) == (T0 + 200.0, T0 + 320.0, ("restart_report",))

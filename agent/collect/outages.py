@@ -10,10 +10,15 @@ Rules
    (MQTT 3.1.1 / 5.0 keepalive rule), and the will carries the time its connection was made,
    not when it fired. It marks the device offline (:func:`presence_from_status`, with the
    window in which it went silent) and nothing more: a network fault looks the same.
-2. **Outage windows come from the agent itself.**
+2. **Outage windows come from the agent itself, and only from power loss or unexplained
+   silence.**
    - its restart report: a status message with ``last_ran`` (the last time the agent was
      alive before this start) opens the window at ``last_ran`` and closes it at the restart,
-     ``t - uptime_s`` (the agent's own start; ``t`` when uptime is unknown);
+     ``t - uptime_s`` (the agent's own start; ``t`` when uptime is unknown) — unless the
+     report says ``last_stop = "planned"``: the agent stopped cleanly and said so (its
+     sequenced offline status with ``reason = "planned_stop"`` and a retained presence with
+     the same reason), so the silence was a planned restart, not an outage
+     (:func:`planned_stop_window` gives that period for the record);
    - its last-gasp record: an event ``ended_by = "power_loss"`` (the open-event journal
      closed it after the restart) opens the window at the event start and reaches at least
      to its inferred end.
@@ -120,11 +125,28 @@ class OutageWindow:
 def restart_window(msg: Mapping[str, Any]) -> OutageWindow | None:
     """The window of a restart report, or None for a status message that is not one.
 
-    Only a device's own ``online`` (or ``heartbeat``) report with ``last_ran`` qualifies;
-    an ``offline`` message never opens a window (rule 1).
+    Only a device's own ``online`` (or ``heartbeat``) report with ``last_ran`` qualifies,
+    and not when it says ``last_stop = "planned"``; an ``offline`` message never opens a
+    window (rule 1).
     """
     if msg.get("state") not in ("online", "heartbeat") or msg.get("last_ran") is None:
         return None
+    if msg.get("last_stop") == "planned":
+        return None  # a planned restart: silence the agent announced is no outage
+    return _silence(msg, ("restart_report",))
+
+
+def planned_stop_window(msg: Mapping[str, Any]) -> OutageWindow | None:
+    """The downtime of a planned restart (``last_stop = "planned"``), source
+    ``planned_stop``; None for any other message. Not an outage: for listing only."""
+    if (msg.get("state") not in ("online", "heartbeat") or msg.get("last_ran") is None
+            or msg.get("last_stop") != "planned"):
+        return None
+    return _silence(msg, ("planned_stop",))
+
+
+def _silence(msg: Mapping[str, Any], sources: tuple[str, ...]) -> OutageWindow:
+    """From ``last_ran`` to the restart ``t - uptime_s`` of a restart report."""
     last_ran = _num(msg, "last_ran", required=True)
     t = _num(msg, "t", required=True)
     uptime = _num(msg, "uptime_s")
@@ -133,8 +155,7 @@ def restart_window(msg: Mapping[str, Any]) -> OutageWindow | None:
     if restart < last_ran:
         raise ValueError(f"status of {msg.get('device')!r}: restart at {restart} (t - uptime_s)"
                          f" is before last_ran {last_ran}")
-    return OutageWindow(_ident(msg, "device"), _ident(msg, "site"), last_ran, restart,
-                        ("restart_report",))
+    return OutageWindow(_ident(msg, "device"), _ident(msg, "site"), last_ran, restart, sources)
 
 
 def last_gasp_window(msg: Mapping[str, Any]) -> OutageWindow | None:

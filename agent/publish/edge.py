@@ -27,6 +27,7 @@ from agent.acquisition.open_source import open_source
 from agent.acquisition.timebase import ReplayTimebase, Timebase
 from agent.events.classify import classify_event
 from agent.events.types import Event
+from agent.measurement.harmonics import max_harmonic_order
 from agent.measurement.types import BasicIntervals, HalfCycleRms, MeasurementOutput
 from agent.pipeline import Frame, edge_stages, push
 from agent.publish import topics
@@ -40,6 +41,8 @@ from agent.wire.records import FLAG_BITS, SummaryBatcher, default_rms_exponent, 
 
 log = structlog.get_logger("halfcycle.edge")
 
+# The reason a clean shutdown gives in its offline status and retained presence.
+PLANNED_STOP = "planned_stop"
 # Message kinds that carry the clock state of the data they hold (events carry their own).
 _CLOCKED_KINDS = ("summary", "aggregate", "capture")
 # Sources that are replayed or synthesised carry no wall time of their own.
@@ -244,7 +247,12 @@ class EdgeSink:
         return (*values, np.asarray(flags) | bits)
 
     def status(
-        self, state: str, *, last_ran: float | None = None, reason: str | None = None
+        self,
+        state: str,
+        *,
+        last_ran: float | None = None,
+        reason: str | None = None,
+        last_stop: str | None = None,
     ) -> None:
         ts = self.timebase.state()
         self._queue(
@@ -260,6 +268,10 @@ class EdgeSink:
                 t=self.clock(),
                 reason=reason,
                 site_model=codec.site_model_body(self.site) if state == "online" else None,
+                last_stop=last_stop,
+                # Which harmonics the published THD covers (below 40 at low sample rates).
+                thd_max_order=max(0, max_harmonic_order(self.info.sample_rate,
+                                                        self.site.nominal_hz)),
             ),
             Lane.PRIORITY,
         )
@@ -281,12 +293,17 @@ class EdgeSink:
         self.counters.encode_errors += 1
         log.error("message_refused_by_schema", kind=kind, reason=exc.reason)
 
-    def startup(self, recovered: list[Event], previous_run: float | None) -> None:
-        """The restart report: when the agent last ran, and events closed by power loss."""
+    def startup(
+        self, recovered: list[Event], previous_run: float | None, last_stop: str | None = None
+    ) -> None:
+        """The restart report: when the agent last ran, whether that run stopped cleanly
+        (``last_stop``, see :meth:`Outbox.mark_planned_stop`), and events closed by power
+        loss."""
         self.status(
             "online",
             last_ran=previous_run,
             reason="restart" if previous_run is not None else "first start",
+            last_stop=last_stop if previous_run is not None else None,
         )
         for ev in recovered:
             self.event(ev, "ended")
@@ -445,8 +462,9 @@ def run_edge(
     recovered = parts.journal.recover(time.time())
     for ev in recovered:
         classify_event(ev, site.nominal_hz)
-    sink.startup(recovered, outbox.previous_run)  # committed to the outbox before ...
+    sink.startup(recovered, outbox.previous_run, outbox.previous_stop)  # committed before ...
     parts.journal.acknowledge(ev.event_id for ev in recovered)  # ... the journal forgets them
+    outbox.heartbeat()  # this run has started: a crash from here on is not a planned stop
     log.info(
         "edge_start",
         device=site.device_id,
@@ -469,6 +487,7 @@ def run_edge(
     blocks = samples = 0
     t_start = time.monotonic()
     live = isinstance(timebase, ClockModel)
+    planned = False
     try:
         for block in source.blocks():
             if live:
@@ -487,14 +506,23 @@ def run_edge(
                 if lag > 0 and stop.wait(lag):
                     break
         push(stages, Frame(None))
+        # A clean stop (signal, end of the source, max_seconds) says so before it goes, in
+        # the sequence, so the collector never reads the silence as an outage.
+        sink.status("offline", reason=PLANNED_STOP)
+        sink.commit()
+        planned = True
     finally:
         source.close()
         # Let the publisher deliver what is committed, within bounds; the outbox keeps the rest.
         deadline = time.monotonic() + drain_timeout_s
         while outbox.pending_count() and time.monotonic() < deadline and thread.is_alive():
             time.sleep(0.1)
+        if planned:
+            publisher.stop_reason = PLANNED_STOP  # the retained offline presence says so too
         publisher_stop.set()
         thread.join(timeout=drain_timeout_s + 5)
+        if planned and not thread.is_alive():
+            outbox.mark_planned_stop()  # last: the next start reports last_stop = planned
         pending = outbox.pending_count()
         outbox.close()
         log.info(

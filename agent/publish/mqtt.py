@@ -209,6 +209,9 @@ class Publisher:
         self._ack_topic = topics.ack_topic(outbox.site, outbox.device)
         self._presence_topic = topics.topic(outbox.site, outbox.device, topics.PRESENCE_KIND)
         self._max_attempts = config.effective_max_attempts()
+        # Set before stopping run() to say why in the retained offline presence (a clean
+        # stop: "planned_stop"); the Last Will carries no reason.
+        self.stop_reason: str | None = None
         self._client = self._make_client()
 
     # ----------------------------------------------------------------- client
@@ -239,10 +242,12 @@ class Publisher:
         client.on_subscribe = self._on_subscribe
         return client
 
-    def _presence(self, state: str) -> bytes:
+    def _presence(self, state: str, reason: str | None = None) -> bytes:
         """Retained status message outside the sequence (seq 0, see agent.publish.topics)."""
-        return codec.encode(self._identity.stamp(self._presence_body(state),
-                                                 topics.PRESENCE_SEQ))
+        body = dict(self._presence_body(state))
+        if reason is not None:
+            body["reason"] = reason
+        return codec.encode(self._identity.stamp(body, topics.PRESENCE_SEQ))
 
     @property
     def connected(self) -> bool:
@@ -462,7 +467,8 @@ class Publisher:
         """Publish the retained "offline" presence (a clean DISCONNECT suppresses the Will)."""
         self._closing = True
         if self._connected:
-            info = self._client.publish(self._presence_topic, self._presence("offline"),
+            info = self._client.publish(self._presence_topic,
+                                        self._presence("offline", self.stop_reason),
                                         qos=1, retain=True)
             end = self._now() + timeout
             while not info.is_published() and self._connected and self._now() < end:

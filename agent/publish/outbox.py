@@ -262,7 +262,7 @@ class Outbox:
             if str(mode).lower() != "wal":
                 raise OutboxError(f"{self.path}: cannot switch SQLite to WAL (got {mode})")
             self._db.execute("PRAGMA synchronous = FULL")
-            self.epoch, self.previous_run = self._init_schema()
+            self.epoch, self.previous_run, self.previous_stop = self._init_schema()
         except sqlite3.Error as exc:
             # A damaged or foreign file is left untouched for inspection: never recreated
             # silently (that would hide the loss of whatever it held).
@@ -271,7 +271,7 @@ class Outbox:
         self._identity = codec.Identity(site=site, device=device, epoch=self.epoch)
 
     # ----------------------------------------------------------------- setup
-    def _init_schema(self) -> tuple[str, float | None]:
+    def _init_schema(self) -> tuple[str, float | None, str | None]:
         # executescript commits any open transaction, so the DDL carries its own.
         self._db.executescript("BEGIN IMMEDIATE;" + _SCHEMA + "COMMIT;")
         with self._write():
@@ -293,9 +293,19 @@ class Outbox:
             if meta["device"] != self.device:
                 raise OutboxError(f"{self.path}: outbox belongs to device {meta['device']!r}, "
                                   f"not {self.device!r}")
-            row = self._db.execute(
-                "SELECT value FROM agent_state WHERE key = 'last_run'").fetchone()
-        return meta["epoch"], (float(row[0]) if row else None)
+            state = dict(self._db.execute(
+                "SELECT key, value FROM agent_state WHERE key IN ('last_run', 'planned_stop')"
+            ).fetchall())
+        last_run = float(state["last_run"]) if "last_run" in state else None
+        # The last run stopped cleanly only if nothing ran after its planned-stop mark (every
+        # run writes last_run on start, which breaks the equality).
+        if last_run is None:
+            stop = None
+        elif state.get("planned_stop") == state["last_run"]:
+            stop = "planned"
+        else:
+            stop = "unplanned"
+        return meta["epoch"], last_run, stop
 
     class _Tx:
         def __init__(self, db: sqlite3.Connection) -> None:
@@ -641,6 +651,17 @@ class Outbox:
         with self._write() as db:
             db.execute("INSERT INTO agent_state VALUES ('last_run', ?) ON CONFLICT(key)"
                        " DO UPDATE SET value = excluded.value", (repr(now),))
+
+    @_locked
+    def mark_planned_stop(self, now: float | None = None) -> None:
+        """Record a clean stop: the next start reports ``last_stop = "planned"`` (no outage)
+        unless anything runs and calls :meth:`heartbeat` in between. Call it last, after the
+        publisher has stopped."""
+        now = self._clock() if now is None else now
+        with self._write() as db:
+            for key in ("last_run", "planned_stop"):
+                db.execute("INSERT INTO agent_state VALUES (?, ?) ON CONFLICT(key)"
+                           " DO UPDATE SET value = excluded.value", (key, repr(now)))
 
     @_locked
     def last_run(self) -> float | None:

@@ -15,8 +15,10 @@ without per-message savepoints; only if something in it is refused is that attem
 the batch applied again with one savepoint per message (still in the same transaction).
 
 Outage windows (rules in :mod:`agent.collect.outages`) are kept one per report, from a
-device's restart report (a sequenced online status with ``last_ran``) and from each event
-closed with ``ended_by = "power_loss"``; a Last Will only marks the device offline.
+device's restart report (a sequenced online status with ``last_ran``, unless it says
+``last_stop = "planned"``: a clean stop and start is no outage) and from each event closed
+with ``ended_by = "power_loss"``; a Last Will only marks the device offline, and so does a
+planned stop (the device's status then says ``reason = "planned_stop"``).
 
 Concurrency: several collectors may share one PostgreSQL database. Each batch first locks the
 ``streams`` rows of the streams it touches, in sorted order (no deadlock cycles), so batches of
@@ -58,7 +60,7 @@ _CHANGE_STATE = {"started": "open", "ended": "closed"}
 DEVICE_STATES = ("online", "offline", "unknown")
 # Status fields kept with the device (the latest report wins).
 STATUS_KEYS = ("state", "t", "agent_version", "uptime_s", "last_ran", "outbox_depth", "clock",
-               "reason")
+               "reason", "last_stop", "thd_max_order")
 ENVELOPE_KEYS = ("v", "type", "device", "site", "epoch", "seq")
 CHUNK_KEYS = ("capture_id", "event_id", "index", "total", "sha256", "data")
 # Presence messages (retained status, MQTT will) carry this seq, outside the sequence.
