@@ -17,7 +17,7 @@ from agent.measurement.conditioning import (
     remove_dc_blockwise,
 )
 from agent.measurement.frequency import frequency_from_crossings, whole_cycles
-from agent.measurement.harmonics import max_harmonic_order, window_thd
+from agent.measurement.harmonics import max_harmonic_order, thd_label, window_thd
 from agent.measurement.imbalance import (
     negative_sequence_ratio,
     split_phase_imbalance,
@@ -26,7 +26,7 @@ from agent.measurement.imbalance import (
 from agent.measurement.quality import QualityMonitor, adc_rails, clipped_mask, flat_chunks
 from agent.measurement.rms import half_cycle_rms, rms, segment_integrals, window_rms
 from agent.measurement.zerocross import fundamental_zero_crossings
-from tests._measurement_helpers import phase_of, wave
+from tests._measurement_helpers import make_engine, phase_of, wave
 
 FS = 7680.0
 
@@ -156,6 +156,18 @@ def test_max_harmonic_order_limited_by_sample_rate() -> None:
     assert max_harmonic_order(7680, 50) == 40
     assert max_harmonic_order(3200, 50) == 28        # 28*50 = 1400 < 1440 <= 29*50
     assert max_harmonic_order(2000, 60) == 14        # 14*60 = 840 < 900
+
+
+def test_thd_label_says_which_orders_it_covers() -> None:
+    # Issue 7 item 11: THD to the 40th is plain "THD" (EN 50160 limit up to h40, pub); a THD
+    # capped by the sample rate names its orders.
+    assert thd_label(40) == "THD" and thd_label(None) == "THD"
+    assert thd_label(max_harmonic_order(3200, 50)) == "THD (h2–h28)"
+    assert thd_label(max_harmonic_order(3840, 50)) == "THD (h2–h34)"
+    assert "no harmonic" in thd_label(0)
+    fs = 2000.0
+    engine = make_engine(fs, 120, 60, 1, 0.01)
+    assert engine.thd_max_order == max_harmonic_order(fs, 60) == 14
 
 
 def test_split_phase_and_three_phase_imbalance() -> None:

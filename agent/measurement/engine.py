@@ -184,6 +184,12 @@ class MeasurementEngine:
         self._reset_signal(0)
 
     @property
+    def thd_max_order(self) -> int:
+        """Highest harmonic order the THD values cover (40 unless the sample rate caps it;
+        0 when it allows no harmonic); label with :func:`harmonics.thd_label`."""
+        return self._order if self._order >= 2 else 0
+
+    @property
     def _buf(self) -> F32:
         """The carried samples (n, channels) [V], float32 (all the harmonics need)."""
         return self._wave.T

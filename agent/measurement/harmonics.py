@@ -4,7 +4,9 @@ References
 ----------
 IEC 61000-4-7 Ed.2 clause 3 and 5.6: 10/12-cycle window (5 Hz bins), harmonic subgroup =
 sqrt of the sum of squares of the harmonic bin and its two neighbours; THD = sqrt(sum over
-h = 2..H of Ysg_h²) / Ysg_1, H = 40 (EN 50160 also uses 40). IEC 61000-4-30 Ed.3 clause 5.8.
+h = 2..H of Ysg_h²) / Ysg_1, H = 40 (EN 50160's THD limit is up to the 40th, pub; 40 as
+IEC 61000-4-7's default is from memory, tests/SOURCES.md). IEC 61000-4-30 Ed.3 clause 5.8.
+Where the sample rate caps H below 40 the value covers fewer orders: :func:`thd_label`.
 Catmull-Rom interpolation: Catmull & Rom (1974), "A class of local interpolating splines".
 """
 
@@ -21,6 +23,20 @@ def max_harmonic_order(sample_rate: float, fundamental_hz: float, limit: int = 4
                        usable_fraction: float = 0.45) -> int:
     """Highest harmonic order h with h * f1 < usable_fraction * fs, capped at ``limit``."""
     return int(min(limit, np.ceil(usable_fraction * sample_rate / fundamental_hz) - 1))
+
+
+#: The highest order a THD covers when nothing caps it (EN 50160, IEC 61000-4-7).
+THD_FULL_ORDER = 40
+
+
+def thd_label(max_order: int | None) -> str:
+    """``"THD"`` when it covers h2..h40, else ``"THD (h2–hN)"`` with N = ``max_order``
+    (e.g. a low sample rate caps it, :func:`max_harmonic_order`); ``"THD"`` when unknown."""
+    if max_order is None or max_order >= THD_FULL_ORDER:
+        return "THD"
+    if max_order < 2:
+        return "THD (no harmonic within the sample rate)"
+    return f"THD (h2–h{int(max_order)})"
 
 
 def resample_points(n_samples: int) -> int:
