@@ -33,7 +33,8 @@ def test_clean_sine_rms_is_peak_over_root2(tmp_path: Path, nominal: float, hz: f
                adc={"bits": 16, "full_scale_v": 500.0})
     v = _volts(src)[:, 0]  # 1 s = whole cycles at 50 and 60 Hz
     lsb = 500.0 / 32768
-    # RMS of a sine = peak/sqrt(2) (REFERENCE.md, exact); rounding adds at most lsb/sqrt(12)
+    # RMS of a sine = peak/sqrt(2) (mathematics, exact; tests/SOURCES.md); rounding adds at
+    # most lsb/sqrt(12)
     peak = nominal * math.sqrt(2)
     assert rms(v) == pytest.approx(peak / math.sqrt(2), abs=lsb / math.sqrt(12))
     assert np.max(np.abs(v)) == pytest.approx(peak, abs=lsb)
@@ -55,7 +56,7 @@ def test_harmonics_at_stated_amplitude_and_phase(tmp_path: Path) -> None:
         rel = np.angle(spec[k]) + math.pi / 2 - h["order"] * (np.angle(spec[60]) + math.pi / 2)
         want = math.radians(float(h.get("phase_deg", 0.0)))
         assert math.remainder(rel - want, 2 * math.pi) == pytest.approx(0.0, abs=2e-3)
-    # RMS of a sum of harmonics = sqrt(sum of squares) (REFERENCE.md, exact)
+    # RMS of a sum of harmonics = sqrt(sum of squares) (mathematics, exact; tests/SOURCES.md)
     expect = 120.0 * math.sqrt(1 + sum((h["percent"] / 100) ** 2 for h in harm))
     assert rms(v) == pytest.approx(expect, rel=1e-5)
 

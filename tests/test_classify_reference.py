@@ -120,8 +120,8 @@ def test_ieee1564_severity_is_one_on_the_curve(level: float, duration: float) ->
 
 
 def test_ieee1564_severity_outside_range_and_energy_pass_through() -> None:
-    assert classify("dip", 0.5, 0.015, 50.0)["ieee1564_severity"] is None  # < 20 ms (mem)
-    assert classify("dip", 0.5, 15.0, 50.0)["ieee1564_severity"] is None  # > 10 s (mem)
+    assert classify("dip", 0.5, 0.015, 50.0)["ieee1564_severity"] is None  # < 20 ms (from memory)
+    assert classify("dip", 0.5, 15.0, 50.0)["ieee1564_severity"] is None  # > 10 s (from memory)
     assert classify("swell", 1.2, 0.1, 50.0)["ieee1564_severity"] is None
     assert classify("dip", 0.2, 0.1, 50.0)["ieee1564_severity"] == pytest.approx(0.8 / 0.5)
     assert classify("dip", 0.5, 0.1, 50.0, sag_energy_s=0.075)["sag_energy_s"] == 0.075

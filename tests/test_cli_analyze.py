@@ -1,8 +1,8 @@
 """``halfcycle analyze`` end to end: bundled invented recording, CSV input, bad files.
 
 Expectations come from the scenario files (what was injected) and from published tables:
-IEEE 1159-2019 Table 2 categories, IEC 61000-4-30 Ed.3 duration uncertainty (±1 cycle,
-from memory: REFERENCE.md), ITIC (2000) regions.
+IEEE 1159-2009 Table 2 categories, IEC 61000-4-30 Ed.3 duration uncertainty (±1 cycle,
+from memory: tests/SOURCES.md), ITIC (2000) regions.
 """
 
 from __future__ import annotations
@@ -50,7 +50,8 @@ def test_bundled_recording_header(bundled: dict) -> None:
     assert bundled["nominal_v"] == 120.0
     assert bundled["channels"] == 2
     assert bundled["duration_s"] == pytest.approx(60.0)
-    # IEC 61000-4-30 Ed.3 cl. 5.1: one 10-s frequency value per clock-aligned 10-s interval.
+    # IEC 61000-4-30 Ed.3 cl. 5.1: one 10-s frequency value per clock-aligned 10-s interval
+    # (from memory: tests/SOURCES.md).
     ts = [f["t"] for f in bundled["frequency"]]
     assert ts == [0.0, 10.0, 20.0, 30.0, 40.0, 50.0]
     # IEC 61000-4-30 Ed.3 cl. 4.4: 12-cycle basic intervals at 60 Hz are 0.2 s, gapless.
@@ -74,7 +75,7 @@ def test_bundled_recording_events_match_the_invented_scenario(bundled: dict) -> 
     for got, want in zip(events, injected, strict=True):
         # Start: the first Urms(1/2) window touching the event starts up to one cycle early.
         assert want["start_s"] - cycle <= got["start_s"] <= want["start_s"] + cycle
-        # IEC 61000-4-30 Ed.3: duration uncertainty ±1 cycle (from memory, REFERENCE.md).
+        # IEC 61000-4-30 Ed.3: duration uncertainty ±1 cycle (from memory, tests/SOURCES.md).
         assert got["duration_s"] == pytest.approx(want["duration_s"], abs=cycle)
         # Residual / maximum: injected level, uncalibrated +0.15 % gain error and ~0.1 %
         # harmonic content of the invented ADC and supply: within 0.5 % of Udin.
@@ -94,7 +95,7 @@ def test_bundled_recording_events_match_the_invented_scenario(bundled: dict) -> 
     # SEMI F47: 72 % for 0.3 s is inside (70 % for 0.5 s is required); null for swells and
     # for events beyond 1 s.
     assert [e["semi_f47"] for e in events] == ["inside", None, None]
-    # IEEE 1564 Se = (1 - V) / (1 - 0.7) for 0.2-0.5 s (from memory, REFERENCE.md).
+    # IEEE 1564 Se = (1 - V) / (1 - 0.7) for 0.2-0.5 s (from memory, tests/SOURCES.md).
     assert dip["severity"] == pytest.approx((1 - dip["level_pu"]) / 0.3, rel=1e-3)
     assert swell["severity"] is None
 

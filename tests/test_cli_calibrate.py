@@ -84,7 +84,7 @@ def test_calibrate_finds_gain_error_and_fixes_the_reading(
     assert record.reference_volts == 230.0 and record.reference_uncertainty_v == 0.05
     assert record.device == "bench-1"
     # With the gain loaded, 10-cycle values are within ±0.1 % of Udin of the true 230 V
-    # (IEC 61000-4-30 Ed.3 Class A magnitude uncertainty, from memory: REFERENCE.md).
+    # (IEC 61000-4-30 Ed.3 Class A magnitude uncertainty, from memory: tests/SOURCES.md).
     settings = load_edge_settings(cfg)
     source = open_source(settings.source)
     engine = MeasurementEngine(

@@ -98,7 +98,7 @@ def test_rectangular_dip_duration_within_one_cycle(hz: float, depth: float) -> N
             assert ev.duration_s is not None
             err = abs(ev.duration_s - (t1 - t0))
             worst = max(worst, err / period)
-            assert err <= period + 1e-9  # IEC 61000-4-30 Ed.3: duration ±1 cycle (mem)
+            assert err <= period + 1e-9  # IEC 61000-4-30 Ed.3: duration ±1 cycle (from memory)
             # residual: lowest Urms(1/2); a 7-cycle dip has whole windows inside it
             assert ev.level_v == pytest.approx(depth * U, rel=1e-9)  # IEC 61000-4-30 Ed.3 cl. 5.4
     assert worst > 0.0  # the sweep really moved the windows against the dip
@@ -166,8 +166,9 @@ def test_polyphase_swell_any_all_and_maximum() -> None:
     evs = ended(run_rows(detector(2, "120/240"), starts, period, u))
     assert [e.kind for e in evs] == ["swell"]
     ev = evs[0]
-    assert ev.start == pytest.approx(starts[20] * RATE)  # IEC 61000-4-30 Ed.3 cl. 5.4: any (mem)
-    assert ev.end == pytest.approx(starts[75] * RATE)  # all <= 1.10 - 0.02 (mem)
+    # IEC 61000-4-30 Ed.3 cl. 5.4: any channel starts a swell (from memory)
+    assert ev.start == pytest.approx(starts[20] * RATE)
+    assert ev.end == pytest.approx(starts[75] * RATE)  # all <= 1.10 - 0.02 (from memory)
     assert ev.level_v == pytest.approx(1.25 * U)
     assert ev.channels == (0, 1)
     assert ev.sag_energy_s is None
@@ -181,7 +182,8 @@ def test_split_phase_leg_loss_is_partial_outage_dip() -> None:
     evs = ended(run_rows(detector(2, "120/240"), starts, period, u))
     assert len(evs) == 1
     ev = evs[0]
-    assert ev.kind == "dip" and ev.partial_outage  # not all channels below: no interruption (mem)
+    # not all channels below: no interruption (from memory)
+    assert ev.kind == "dip" and ev.partial_outage
     assert ev.level_v == pytest.approx(0.0)
     assert ev.channels == (0,)
 
@@ -204,7 +206,8 @@ def test_interruption_is_one_event_with_enclosing_values() -> None:
     assert ev.kind == "interruption"  # all channels < 5 % (EN 50160 threshold, pub)
     i_start, i_end = pre + ramp_down, pre + ramp_down + out
     assert ev.start == pytest.approx(starts[i_start] * RATE)
-    assert ev.end == pytest.approx(starts[i_end] * RATE)  # any channel >= 5 % + 2 % ends it (mem)
+    # any channel >= 5 % + 2 % ends it (from memory)
+    assert ev.end == pytest.approx(starts[i_end] * RATE)
     assert ev.duration_s == pytest.approx(out * period / 2)
     assert ev.enclosing_duration_s == pytest.approx((ramp_down + out + ramp_up) * period / 2)
     assert ev.enclosing_level_v == pytest.approx(u[i_start:i_end].min() * U)
@@ -292,7 +295,7 @@ def test_sag_energy_of_constant_dip() -> None:
     period = 1 / 50
     lvl = rows_of([(1.0, 10), (0.6, 40), (1.0, 10)])
     ev = ended(run_rows(detector(), window_starts(60, period), period, lvl))[0]
-    assert ev.sag_energy_s == pytest.approx((1 - 0.36) * 40 * period / 2)  # IEEE 1564 (mem)
+    assert ev.sag_energy_s == pytest.approx((1 - 0.36) * 40 * period / 2)  # IEEE 1564 (from memory)
     assert sag_energy_terms(np.array([0.0, 1.0]), np.array([0.5, 0.5])).tolist() == [0.5, 0.0]
 
 
@@ -374,7 +377,7 @@ def test_staggered_leg_loss_becomes_interruption_without_partial_flag() -> None:
     u[56:150, 1] = 0.0   # the second leg drops 3 cycles later
     evs = ended(run_rows(detector(2, "120/240"), starts, period, u))
     assert len(evs) == 1 and evs[0].kind == "interruption"
-    assert evs[0].start == pytest.approx(starts[56] * RATE)  # all channels below (mem)
+    assert evs[0].start == pytest.approx(starts[56] * RATE)  # all channels below (from memory)
     assert evs[0].enclosing_duration_s == pytest.approx(100 * period / 2)
     assert evs[0].enclosing_start_utc == pytest.approx(starts[50])
     assert evs[0].partial_outage is False

@@ -1,9 +1,9 @@
 """End to end on real parts: Mosquitto (project broker-config) → edge agents → collector →
 SQLite recorder store → victoria-metrics (InfluxDB v2 write API), all on loopback.
 
-Scenarios are invented. Expected classifications come from IEEE 1159-2019 Table 2 and the
+Scenarios are invented. Expected classifications come from IEEE 1159-2009 Table 2 and the
 ITIC (2000) curve; durations carry the IEC 61000-4-30 Ed.3 ±1 cycle uncertainty (from
-memory, REFERENCE.md).
+memory, tests/SOURCES.md).
 """
 
 from __future__ import annotations
@@ -113,7 +113,8 @@ def test_fleet_events_reach_the_store_classified(fleet) -> None:
         assert rms_max[in_swell].max() == pytest.approx(1.15 * 230, abs=0.005 * 230)
         quiet = ~(in_dip | in_swell)
         assert np.allclose(rms_min[quiet], 230.0, atol=0.005 * 230)
-        # IEC 61000-4-30 Ed.3 cl. 5.1: frequency of the invented 50-Hz supply within 10 mHz.
+        # Frequency of the invented 50-Hz supply within 10 mHz (IEC 61000-4-30 Ed.3 Class A
+        # frequency uncertainty, from memory: tests/SOURCES.md).
         assert np.allclose(hz[quiet], 50.0, atol=0.01)
         # 0.8 s at 115 %: IEEE 1159 momentary swell (30 cycles-3 s, 1.1-1.4 pu).
         assert swell["classification"]["ieee1159_duration_class"] == "momentary"

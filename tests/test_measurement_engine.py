@@ -122,8 +122,9 @@ def test_basic_interval_magnitude_within_0p1_percent(nominal_v: float, nominal_h
 
 @pytest.mark.parametrize(("freq", "nominal"), [(50.0, 50), (49.87, 50), (60.0, 60), (60.13, 60)])
 def test_ten_second_frequency_within_10_mhz(freq: float, nominal: int) -> None:
-    # IEC 61000-4-30 Ed.3 cl. 5.1: whole cycles in each 10-s clock interval / their duration;
-    # Class A ±10 mHz (from memory). Signal through the ADC model with harmonics and noise.
+    # IEC 61000-4-30 Ed.3 cl. 5.1 (from memory): whole cycles in each 10-s clock interval /
+    # their duration; Class A ±10 mHz (from memory). Signal through the ADC model with
+    # harmonics and noise.
     n = int(FS * 31)
     vpc = 0.02
     x = wave(phase_of(FS, n, freq, 0.1), 325.0, {3: (0.05, 0.0), 5: (0.06, 1.0)})
@@ -153,8 +154,8 @@ def test_ten_second_frequency_while_drifting() -> None:
 
 
 def test_dip_flags_intervals_and_aggregates() -> None:
-    # IEC 61000-4-30 Ed.3 cl. 4.7: intervals overlapping a dip are flagged, and so is every
-    # aggregate that contains them.
+    # IEC 61000-4-30 Ed.3 cl. 4.7 (from memory): intervals overlapping a dip are flagged, and
+    # so is every aggregate that contains them.
     n = int(FS * 4)
     x = wave(phase_of(FS, n, 50.0), 325.0)
     d0, d1 = int(1.0 * FS), int(1.1 * FS)
@@ -179,7 +180,8 @@ def test_flag_covers_the_hysteresis_tail_of_an_open_event() -> None:
     # Invented: 230 V 50 Hz, a dip to 0.5 pu at 1.0-1.1 s that recovers only to 0.91 pu (above
     # the 90 % dip threshold, below threshold + 2 % hysteresis) until 2.5 s, then 1.0 pu.
     # IEC 61000-4-30 Ed.3 cl. 5.4: the dip lasts until every channel is at or above threshold
-    # + hysteresis; cl. 4.7: every interval it overlaps is flagged (tail included).
+    # + hysteresis (pub); cl. 4.7: every interval it overlaps is flagged, tail included (from
+    # memory).
     n = int(FS * 4)
     x = wave(phase_of(FS, n, 50.0), 325.0)
     d0, tail, d1 = int(1.0 * FS), int(1.1 * FS), int(2.5 * FS)
@@ -251,9 +253,9 @@ def test_reference_falls_back_to_live_channel_and_nominal_period() -> None:
 
 
 def test_basic_intervals_resynchronise_at_ten_minute_tick() -> None:
-    # IEC 61000-4-30 Ed.3 cl. 4.4/4.5: 10/12-cycle intervals are resynchronised at each 10-min
-    # tick; the 150/180-cycle group restarts there too. Tick at 4.9 s of the record, in the
-    # middle of an interval.
+    # IEC 61000-4-30 Ed.3 cl. 4.5 (pub; the clause number from memory): 10/12-cycle
+    # intervals are resynchronised at each 10-min tick; the 150/180-cycle group restarts there
+    # too. Tick at 4.9 s of the record, in the middle of an interval.
     n = int(FS * 8)
     x = wave(phase_of(FS, n, 50.0, 0.5), 325.0)
     eng = make_engine(FS, 230, 50, 1, 0.02, origin=595.1)

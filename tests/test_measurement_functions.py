@@ -182,7 +182,7 @@ def test_split_phase_and_three_phase_imbalance() -> None:
 
 
 def test_frequency_from_whole_cycles() -> None:
-    # IEC 61000-4-30 Ed.3 cl. 5.1: whole cycles / their cumulative duration.
+    # IEC 61000-4-30 Ed.3 cl. 5.1: whole cycles / their cumulative duration (from memory).
     t = np.arange(0, 1001) / 100.4       # half-cycle crossings of 50.2 Hz [s]
     assert frequency_from_crossings(t) == pytest.approx(50.2, rel=1e-12)
     syn = np.zeros(t.shape, bool)

@@ -25,7 +25,8 @@ def _capture(n: int = 1536, trigger_row: int = 384) -> Capture:
     volts = np.stack([230 * np.sqrt(2) * np.sin(2 * np.pi * 50 * t),
                       230 * np.sqrt(2) * np.sin(2 * np.pi * 50 * t - 2 * np.pi / 3)], axis=1)
     counts = np.rint(volts / scale).astype(np.int16)
-    counts[10, 0] = -32768  # negative rail: written as -32767 (0x8000 means missing)
+    # negative rail: written as -32767 (0x8000 means missing: from memory, tests/SOURCES.md)
+    counts[10, 0] = -32768
     counts[11, 1] = 32767
     return Capture(capture_id="cap-1", event_id="ev-1", trigger="start", first_index=100_000,
                    trigger_index=100_000 + trigger_row, trigger_utc=TRIGGER_UTC, sample_rate=FS,

@@ -1,7 +1,8 @@
 """Dip, swell and interruption detection over Urms(1/2) values.
 
-A vectorised state machine after IEC 61000-4-30 Ed.3 clause 5.4 (dips and swells) and its
-interruption rules, polyphase rules included:
+A vectorised state machine after IEC 61000-4-30 Ed.3 clause 5.4 (dips and swells) and
+clause 5.5 (interruptions, from memory), polyphase rules included; the interruption
+threshold itself is EN 50160's 5 % or IEEE 1159's 10 % (tests/SOURCES.md):
 
 - dip: starts when ANY channel falls below the dip threshold; ends when ALL channels are at
   or above the dip threshold plus the hysteresis;
@@ -14,7 +15,7 @@ Timestamp convention (both edges alike, so the duration is unbiased by window po
 event starts at the *start* of the first Urms(1/2) window that met the start condition and
 ends at the *start* of the first window that met the end condition. For a rectangular change
 the duration is then within about one cycle of the true one (the ±1 cycle duration
-uncertainty of IEC 61000-4-30 Ed.3). For deep dips (residual below about 0.45 pu) the
+uncertainty of IEC 61000-4-30 Ed.3, from memory). For deep dips (residual below about 0.45 pu) the
 threshold method itself can overstate the duration by up to ~1.06 cycle at unlucky points on
 the wave (one-cycle window, 90 %/92 % threshold pair); ``tests/test_events_detector.py``
 checks the analytic bounds.
@@ -140,7 +141,9 @@ class EventDetector:
 
     References
     ----------
-    IEC 61000-4-30 Ed.3 clause 5.4 (dips and swells) and its interruption rules.
+    IEC 61000-4-30 Ed.3 clause 5.4 (dips and swells) and clause 5.5 (interruptions: start and
+    end rules, from memory). The interruption threshold is EN 50160's 5 % or IEEE 1159's 10 %
+    (:class:`Thresholds`), not IEC 61000-4-30's.
     """
 
     def __init__(

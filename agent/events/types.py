@@ -16,8 +16,9 @@ EndReason = Literal["recovery", "power_loss", "end_of_data"]
 class Thresholds:
     """Event thresholds as fractions of the declared voltage Udin.
 
-    Defaults follow IEC 61000-4-30 Ed.3 clause 5.4 practice: dip 90 %, swell 110 %,
-    hysteresis 2 %; interruption 5 % (EN 50160) or 10 % (IEEE 1159).
+    Dip 90 %, swell 110 % and hysteresis 2 % are the typical settings IEC 61000-4-30 Ed.3
+    clause 5.4 names. That standard sets no interruption threshold: 5 % is EN 50160's
+    (the default), 10 % IEEE 1159's (tests/SOURCES.md).
     """
 
     dip: float = 0.90

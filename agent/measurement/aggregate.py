@@ -4,8 +4,9 @@ References
 ----------
 IEC 61000-4-30 Ed.3 clause 4.5: 150/180-cycle values aggregate 15 basic intervals; 10-min
 values aggregate the basic intervals of a 10-min clock interval, resynchronised at each tick;
-aggregation is the square root of the arithmetic mean of the squared input values. Clause 4.7:
-a flag on any input carries into the aggregate.
+aggregation is the square root of the arithmetic mean of the squared input values (from
+memory). Clause 4.7: a flag on any input carries into the aggregate (from memory;
+tests/SOURCES.md).
 """
 
 from __future__ import annotations

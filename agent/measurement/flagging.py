@@ -1,11 +1,11 @@
 """Which Urms(1/2) windows lie inside a dip, swell or interruption, for the flag.
 
 IEC 61000-4-30 Ed.3 clause 4.7 flags every aggregation interval in which a dip, swell or
-interruption occurred. An event lasts from the window that crossed the threshold until the
-first window that recovered past threshold + hysteresis (clause 5.4), so the flag must cover
-the hysteresis tail too: a window between the dip threshold and threshold + hysteresis is
-inside the event when the event is still open. The latch below mirrors the event detector's
-dip and swell rules (:mod:`agent.events.detector`) row for row, so every interval that
+interruption occurred (from memory, tests/SOURCES.md). An event lasts from the window that crossed
+the threshold until the first window that recovered past threshold + hysteresis (clause 5.4), so
+the flag must cover the hysteresis tail too: a window between the dip threshold and threshold +
+hysteresis is inside the event when the event is still open. The latch below mirrors the event
+detector's dip and swell rules (:mod:`agent.events.detector`) row for row, so every interval that
 overlaps an open event is flagged.
 """
 
@@ -49,8 +49,8 @@ def event_window_flags(urms: F64, dip_v: float, dip_end_v: float, swell_v: float
 
     References
     ----------
-    IEC 61000-4-30 Ed.3 cl. 4.7 (flagging) and cl. 5.4 (dip and swell start and end with
-    hysteresis; polyphase: starts on any channel, ends when all have recovered).
+    IEC 61000-4-30 Ed.3 cl. 4.7 (flagging, from memory) and cl. 5.4 (dip and swell start and
+    end with hysteresis; polyphase: starts on any channel, ends when all have recovered).
     """
     if urms.shape[0] == 0:
         return np.zeros(0, dtype=bool), in_dip, in_swell

@@ -2,9 +2,9 @@
 
 References
 ----------
-IEC 61000-4-30 Ed.3 clause 5.1.1: the frequency reading is the number of integral cycles
+IEC 61000-4-30 Ed.3 clause 5.1: the frequency reading is the number of integral cycles
 counted during the 10-s time clock interval divided by the cumulative duration of the
-integer cycles.
+integer cycles (from memory, tests/SOURCES.md).
 """
 
 from __future__ import annotations
@@ -50,7 +50,7 @@ def frequency_from_crossings(times_s: npt.ArrayLike,
 
     References
     ----------
-    IEC 61000-4-30 Ed.3 clause 5.1.1.
+    IEC 61000-4-30 Ed.3 clause 5.1 (the method from memory).
     """
     n, d = whole_cycles(times_s, synthetic)
     return n / d if n and d > 0 else float("nan")

@@ -36,13 +36,14 @@ class HalfCycleRms:
 
 @dataclass
 class BasicIntervals:
-    """10/12-cycle values (IEC 61000-4-30 Ed.3 clause 4.4, 5.2).
+    """10/12-cycle values (IEC 61000-4-30 Ed.3 clause 4.4).
 
-    ``rms`` and ``thd`` have shape (n, channels); ``rms`` [V], ``thd`` [fraction, not %], NaN
-    where the sample rate cannot support it. ``flagged[k]`` is True where the interval
-    overlaps a dip, swell or interruption (clause 4.7). ``imbalance`` [fraction of Udin] is
-    |V1-V2|/Vnom for split-phase, the IEC 61000-4-30 negative/positive-sequence ratio for
-    three-phase (magnitudes only: NaN when not computable), NaN for single phase.
+    ``rms`` and ``thd`` have shape (n, channels); ``rms`` [V], ``thd`` [fraction, not %], NaN where
+    the sample rate cannot support it. ``flagged[k]`` is True where the interval overlaps a dip,
+    swell or interruption, hysteresis tail included (clause 4.7, from memory). ``imbalance``
+    [fraction of Udin] is |V1-V2|/Vnom for split-phase, the IEC 61000-4-30
+    negative/positive-sequence ratio for three-phase (magnitudes only: NaN when not computable),
+    NaN for single phase.
     ``hz`` is the fundamental frequency over the interval [Hz] from its zero crossings.
     """
 
@@ -63,8 +64,9 @@ class Aggregate:
     """A clock-aligned aggregate: 150/180-cycle ("3s"), 10-minute ("10min") or 10-s frequency.
 
     ``t_utc`` is the interval start [s since epoch, UTC, or s since file start for replays];
-    ``rms`` per channel [V] (RMS of the 10/12-cycle values, clause 5.2.2/5.2.3) or ``hz`` [Hz]
-    for frequency (clause 5.1: whole cycles in the interval divided by their total duration).
+    ``rms`` per channel [V] (RMS of the 10/12-cycle values, clause 4.5; RMS from memory) or ``hz``
+    [Hz] for frequency (clause 5.1: whole cycles in the interval divided by their total duration,
+    from memory).
     """
 
     kind: str

@@ -3,10 +3,11 @@
 Layout per IEEE C37.111-1999 (and the 2013 revision / IEC 60255-24:2013, which adds the
 time-code and time-quality lines): one analog channel per voltage channel, value = a·x + b
 with x the raw int16 count, a = volts per count (calibration included) and b = 0; no digital
-channels. BINARY records are little-endian: uint32 sample number (from 1), uint32 time stamp
-[µs × timemult], one int16 per analog channel.
+channels. BINARY records are little-endian (from memory): uint32 sample number (from 1),
+uint32 time stamp [µs × timemult], one int16 per analog channel.
 
-The count -32768 (0x8000) marks a missing sample in BINARY files, so a sample at the negative
+The count -32768 (0x8000) marks a missing sample in BINARY files (from memory;
+tests/SOURCES.md), so a sample at the negative
 ADC rail is written as -32767 (one count, i.e. ``a`` volts, higher); the cfg min/max are
 ±32767.
 

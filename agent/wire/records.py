@@ -37,7 +37,7 @@ DEFAULT_K = 60
 def default_rms_exponent(channels: int) -> int:
     """RMS unit of the summaries as a power of ten [V]: 10 mV up to two channels, 0.1 V for
     three. 0.1 V quantises to ±0.05 V, i.e. ±0.04 % of 120 V, inside the ±0.1 % Udin
-    magnitude uncertainty of the IEC 61000-4-30 Class A methods (from memory, REFERENCE.md),
+    magnitude uncertainty of the IEC 61000-4-30 Class A methods (from memory, tests/SOURCES.md),
     and keeps a three-phase monitor within the 1.5 MB/day budget
     (tests/bench/bench_bandwidth.py)."""
     return -2 if channels <= 2 else -1
