@@ -3,7 +3,7 @@
 Limits: ANSI C84.1 Range A service 114-126 V on 120 V (pub); Range A utilization 108-125 V,
 Range B service 110-127 V, utilization 104-127 V (from memory); EN 50160 10-min means within
 Un ±10 % for 95 % of the week, all within +10 %/-15 % (pub); EN 50549-1 10-min mean above
-1.10 Un (from memory). REFERENCE.md lists them with their confidence.
+1.10 Un (from memory). tests/SOURCES.md lists them with their confidence.
 """
 
 from __future__ import annotations
@@ -83,7 +83,8 @@ def test_ansi_fractions_times_worst_values() -> None:
     assert a["fraction_inside"] == pytest.approx(0.7)
     assert a["time_below_s"] == 2.0 and a["time_above_s"] == 1.0
     assert a["worst_low_v"] == 112.0 and a["worst_high_v"] == 126.5
-    assert r["verdict"] == "range_b"  # 112-126.5 V is within Range B service 110-127 V (mem)
+    # 112-126.5 V is within Range B service 110-127 V (from memory)
+    assert r["verdict"] == "range_b"
     # The same values as 10-min means: time outside counts 600 s each.
     r10 = ansi_c84_1(v, 120.0, "service", interval_s=600.0)
     assert r10["range_a"]["time_below_s"] == 1200.0
