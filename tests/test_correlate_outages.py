@@ -106,6 +106,12 @@ def test_planned_restart_is_no_outage() -> None:
     windows = device_outage_windows(msgs, [])
     assert [w.device for w in windows] == ["d3"]
     assert site_outages(windows, {"block-a": 3}) == []
+    # The clean stop's own offline report: offline at its t, marked planned (not out).
+    stop = {**status("d1", "offline", T0), "reason": "planned_stop"}
+    p = presence_from_status(stop, T0 + 1.0, KEEPALIVE, will=False)
+    assert (p.state, p.earliest_utc, p.planned) == ("offline", T0, True)
+    assert not presence_from_status(status("d1", "offline", T0), T0, KEEPALIVE,
+                                    will=False).planned
     # A planned restart with a power-loss event in it still shows the power loss.
     gasp = last_gasp("d1", T0 - 2.0, T0 - 1.0)
     (lost,) = device_outage_windows([planned], [gasp])

@@ -203,3 +203,21 @@ def test_planned_restart_is_stored_but_makes_no_window(store: RecorderStore) -> 
                                        last_stop="unplanned", v=2)])
     (w,) = store.outage_windows()
     assert (w.start_utc, w.end_utc, w.sources) == (T0 + 200.0, T0 + 320.0, ("restart_report",))
+
+
+def test_events_read_back_with_the_time_below_the_dip_threshold(store: RecorderStore) -> None:
+    # Issue 7 item 7: an interruption keeps two durations. Event v2 sends dip_duration_s; for
+    # a v1 message the store derives it (enclosing_duration_s of an interruption, duration_s
+    # of a dip; agent.events.types.dip_duration_of).
+    start = 1_700_000_100.0  # event() starts every event here
+    store.commit_batch([
+        {**event(1, "ev-v2", "closed", end_utc=start + 0.4, enclosing_duration_s=1.5,
+                 dip_duration_s=1.5, v=2), "kind": "interruption"},
+        {**event(2, "ev-v1", "closed", end_utc=start + 0.4, enclosing_duration_s=1.2),
+         "kind": "interruption"},
+        event(3, "ev-dip", "closed", end_utc=start + 0.25),
+    ])
+    got = {e["event_id"]: (e["duration_s"], e["dip_duration_s"]) for e in store.events()}
+    assert got["ev-v2"] == (pytest.approx(0.4), 1.5)
+    assert got["ev-v1"] == (pytest.approx(0.4), 1.2)
+    assert got["ev-dip"] == (pytest.approx(0.25), pytest.approx(0.25))

@@ -38,8 +38,11 @@ from collections.abc import Callable, Collection, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any, Literal
 
+from agent.wire.codec import PLANNED_STOP
+
 #: MQTT: the server closes a connection silent for 1.5 × keepalive (MQTT 3.1.1 cl. 3.1.2.10).
 WILL_DELAY_FACTOR = 1.5
+
 
 
 def _num(msg: Mapping[str, Any], key: str, required: bool = False) -> float | None:
@@ -68,7 +71,8 @@ class Presence:
     """What a status message says about a device being reachable.
 
     ``state`` online or offline; the change happened between ``earliest_utc`` and
-    ``latest_utc`` [s UTC] (equal when the device itself said so).
+    ``latest_utc`` [s UTC] (equal when the device itself said so). ``planned`` is True for
+    the offline report of a clean stop (``reason = "planned_stop"``): offline, not out.
     """
 
     device: str
@@ -76,6 +80,7 @@ class Presence:
     state: Literal["online", "offline"]
     earliest_utc: float
     latest_utc: float
+    planned: bool = False
 
 
 def presence_from_status(msg: Mapping[str, Any], received_at: float, keepalive_s: float,
@@ -100,7 +105,9 @@ def presence_from_status(msg: Mapping[str, Any], received_at: float, keepalive_s
                         received_at)
     t = _num(msg, "t", required=True)
     assert t is not None
-    return Presence(device, site, "offline" if state == "offline" else "online", t, t)
+    if state == "offline":
+        return Presence(device, site, "offline", t, t, msg.get("reason") == PLANNED_STOP)
+    return Presence(device, site, "online", t, t)
 
 
 # --- per-device outage windows (rule 2) -------------------------------------------------------

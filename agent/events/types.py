@@ -87,15 +87,23 @@ class Event:
         cl. 5.4); None for swells and while unknown. The EN 50160 dip table and IEEE 1564
         judge on it; IEEE 1159 judges an interruption on its own ``duration_s``
         (:data:`agent.events.classify.DURATION_BASIS`)."""
-        if self.kind == "dip":
-            return self.duration_s
-        if self.kind == "interruption":
-            return self.enclosing_duration_s
-        return None
+        return dip_duration_of(self.kind, self.duration_s, self.enclosing_duration_s)
 
     @property
     def level_pu(self) -> float:
         return self.level_v / self.nominal_v
+
+
+def dip_duration_of(kind: str, duration_s: float | None,
+                    enclosing_duration_s: float | None) -> float | None:
+    """Duration below the dip threshold [s] from an event's fields: ``duration_s`` for a dip,
+    ``enclosing_duration_s`` for an interruption, None for a swell (or when unknown). Also
+    reads event messages older than event v2, which do not carry ``dip_duration_s``."""
+    if kind == "dip":
+        return duration_s
+    if kind == "interruption":
+        return enclosing_duration_s
+    return None
 
 
 @dataclass

@@ -36,13 +36,12 @@ from agent.publish.outbox import Lane, MessageId, Outbox, OutboxLimits
 from agent.settings import EdgeSettings
 from agent.site import Site
 from agent.wire import codec
+from agent.wire.codec import PLANNED_STOP
 from agent.wire.errors import WireError
 from agent.wire.records import FLAG_BITS, SummaryBatcher, default_rms_exponent, per_second
 
 log = structlog.get_logger("halfcycle.edge")
 
-# The reason a clean shutdown gives in its offline status and retained presence.
-PLANNED_STOP = "planned_stop"
 # Message kinds that carry the clock state of the data they hold (events carry their own).
 _CLOCKED_KINDS = ("summary", "aggregate", "capture")
 # Sources that are replayed or synthesised carry no wall time of their own.

@@ -50,7 +50,7 @@ from agent.collect.outages import (
     restart_window,
 )
 from agent.collect.outages import site_outages as _site_outages
-from agent.events.types import Capture
+from agent.events.types import Capture, dip_duration_of
 from agent.store.db import Database, StoreError
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
@@ -1107,6 +1107,11 @@ class RecorderStore:
             for k in ("channels", "thresholds", "classification", "payload"):
                 ev[k] = from_json(ev[k])
             ev["captures"] = caps.get(ev["event_id"], [])
+            # Time below the dip threshold (event v2 sends it; derived for v1 messages).
+            payload = ev["payload"] if isinstance(ev["payload"], dict) else {}
+            ev["dip_duration_s"] = (payload["dip_duration_s"] if "dip_duration_s" in payload
+                                    else dip_duration_of(str(ev["kind"]), ev["duration_s"],
+                                                         payload.get("enclosing_duration_s")))
             out.append(ev)
         return out
 

@@ -41,6 +41,9 @@ SCHEMA_VERSION = 1
 # Message kinds whose current schema version is newer than 1 (schemas/*.schema.json ``v``):
 # event v2 adds ``dip_duration_s``; status v2 adds ``last_stop`` and ``thd_max_order``.
 SCHEMA_VERSIONS: dict[str, int] = {"event": 2, "status": 2}
+#: The ``reason`` of the offline status and retained presence a clean stop sends; the restart
+#: after it reports ``last_stop = "planned"`` (agent.publish.edge, agent.collect.outages).
+PLANNED_STOP = "planned_stop"
 F64 = npt.NDArray[np.float64]
 
 # Largest message decode() accepts by default [bytes]; capture chunks are bounded by the MQTT
