@@ -7,9 +7,10 @@ is bounded (about one basic interval of samples plus a few hundred crossings).
 
 References
 ----------
-IEC 61000-4-30 Ed.3: clause 4.4 and 5.2 (10/12-cycle basic interval, gapless, resynchronised
-at each 10-min tick), 4.5 (aggregation), 4.7 (flagging), 5.1 (frequency), 5.4.2 (Urms(1/2)),
-5.7 (unbalance), 5.8 with IEC 61000-4-7 (harmonics).
+IEC 61000-4-30 Ed.3 (clause numbers from memory, tests/SOURCES.md): clause 4.4 (10/12-cycle
+basic interval, gapless), 4.5 (aggregation, resynchronised at each 10-min tick), 4.7
+(flagging), 5.1 (frequency), 5.4.2 (Urms(1/2)), 5.7 (unbalance), 5.8 with IEC 61000-4-7
+(harmonics).
 """
 
 from __future__ import annotations

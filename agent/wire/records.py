@@ -196,7 +196,7 @@ def per_second(
     [edge k, edge k+1). Returns ``rms_min, rms_mean, rms_max`` (m, ch) [V], ``hz`` (m,)
     [Hz], ``thd`` (m, ch), ``imbalance`` (m,) and ``flags`` (m,) with :data:`FLAG_EVENT`
     where a 10/12-cycle value is flagged. ``rms_mean`` is the RMS of the 10/12-cycle values
-    (sqrt of the mean square, the IEC 61000-4-30 Ed.3 cl. 5.2.2 aggregation); thd, hz and
+    (sqrt of the mean square, the IEC 61000-4-30 Ed.3 cl. 4.5 aggregation); thd, hz and
     imbalance are their means. Seconds without values are NaN.
 
     Parameters
@@ -210,7 +210,8 @@ def per_second(
 
     References
     ----------
-    IEC 61000-4-30 Ed.3 cl. 5.2 (10/12-cycle magnitude, aggregation), cl. 5.4.2 (Urms(1/2)).
+    IEC 61000-4-30 Ed.3 cl. 5.2 (10/12-cycle magnitude), cl. 4.5 (aggregation), cl. 5.4.2
+    (Urms(1/2)).
     """
     edges = np.asarray(edges, dtype=np.float64)
     m = edges.shape[0] - 1
