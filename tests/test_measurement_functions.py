@@ -7,7 +7,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.signal
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+from agent.events.types import Thresholds
 from agent.measurement.aggregate import clock_period, rms_aggregate
 from agent.measurement.conditioning import (
     boxcar,
@@ -16,6 +19,7 @@ from agent.measurement.conditioning import (
     grouped_dc_estimate,
     remove_dc_blockwise,
 )
+from agent.measurement.flagging import event_window_flags
 from agent.measurement.frequency import frequency_from_crossings, whole_cycles
 from agent.measurement.harmonics import max_harmonic_order, thd_label, window_thd
 from agent.measurement.imbalance import (
@@ -265,3 +269,44 @@ def test_flat_chunks_constant_and_dead_channel() -> None:
     flat, constant = flat_chunks(np.stack([live, dead, stuck], axis=1), 40, [1000.0] * 3)
     assert not flat[:, 0].any() and flat[:, 1].all() and flat[:, 2].all()
     assert constant[:, 2].all() and not constant[:, 1].any()
+
+
+def _flags_row_by_row(u: np.ndarray, th: Thresholds) -> list[bool]:
+    """The dip and swell rules written as a plain loop (IEC 61000-4-30 Ed.3 cl. 5.4: start on
+    any channel past the threshold, end when all are back past threshold + hysteresis)."""
+    in_dip = in_swell = False
+    out = []
+    for row in u:
+        if in_dip and all(v >= th.dip + th.hysteresis for v in row):
+            in_dip = False
+        if not in_dip and any(v < th.dip for v in row):
+            in_dip = True
+        if in_swell and all(v <= th.swell - th.hysteresis for v in row):
+            in_swell = False
+        if not in_swell and any(v > th.swell for v in row):
+            in_swell = True
+        out.append(in_dip or in_swell)
+    return out
+
+
+@settings(max_examples=200, deadline=None)
+@given(levels=st.lists(st.sampled_from([0.0, 0.5, 0.895, 0.905, 0.915, 0.925, 1.0, 1.075,
+                                        1.085, 1.095, 1.105, 1.3]), min_size=1, max_size=60),
+       channels=st.integers(1, 3), cut=st.integers(0, 60), seed=st.integers(0, 2**16))
+def test_event_window_flags_follow_the_event_rules(levels: list[float], channels: int,
+                                                   cut: int, seed: int) -> None:
+    # Invented Urms(1/2) rows around the thresholds and inside the hysteresis bands; the
+    # flags must equal the row-by-row rules and not depend on where the stream is split.
+    rng = np.random.default_rng(seed)
+    u = np.column_stack([levels] + [rng.choice(levels, size=len(levels))
+                                    for _ in range(channels - 1)])
+    th = Thresholds()
+    nominal = 230.0
+    args = (th.dip * nominal, (th.dip + th.hysteresis) * nominal, th.swell * nominal,
+            (th.swell - th.hysteresis) * nominal)
+    whole, *_ = event_window_flags(u * nominal, *args, False, False)
+    assert whole.tolist() == _flags_row_by_row(u, th)
+    cut = min(cut, len(levels))
+    a, d, s = event_window_flags(u[:cut] * nominal, *args, False, False)
+    b, *_ = event_window_flags(u[cut:] * nominal, *args, d, s)
+    assert np.concatenate([a, b]).tolist() == whole.tolist()
