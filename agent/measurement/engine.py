@@ -260,6 +260,14 @@ class MeasurementEngine:
         self._cand: list[F64] = [np.zeros(0) for _ in range(c)]
         self._horizon = [-math.inf] * c
         self._chain = ChainState(last=None, anchor=anchor + self._delay)
+        # Each channel's own crossing chain (IEC 61000-4-30 Ed.3 cl. 5.4.2: Urms(1/2) on that
+        # channel's fundamental zero crossings): times, synthetic flags and the integrals of
+        # counts [0] and counts² [1] at each crossing, (2, m).
+        self._own_cand: list[F64] = [np.zeros(0) for _ in range(c)]
+        self._own_chain = [ChainState(last=None, anchor=anchor + self._delay) for _ in range(c)]
+        self._oc_t: list[F64] = [np.zeros(0) for _ in range(c)]
+        self._oc_p: list[I64] = [np.zeros((2, 0), np.int64) for _ in range(c)]
+        self._oc_r: list[F64] = [np.zeros((2, 0)) for _ in range(c)]
         self._wave = np.zeros((c, 0), np.float32)
         # Running sums of counts [0] and counts² [1] before each carried row, (2, n+1, c)
         # [count, count²] (int64, exact; they may wrap around, differences stay exact).
@@ -317,6 +325,8 @@ class MeasurementEngine:
                 t += s0 - d
                 cand = self._cand[c]
                 self._cand[c] = np.concatenate([cand, t]) if cand.shape[0] else t
+                own = self._own_cand[c]
+                self._own_cand[c] = np.concatenate([own, t]) if own.shape[0] else t
             keep = max(last_out, 0, seg.shape[0] - cap)
             self._seg[c] = seg[keep:].copy()
             self._seg_start[c] = s0 + keep
@@ -344,11 +354,58 @@ class MeasurementEngine:
                 cand = self._cand[c]
                 if cand.shape[0]:
                     self._cand[c] = cand[np.searchsorted(cand, floor):]
-        self._emit_windows(out)
+        self._extend_own_chains()
+        self._emit_windows(out, final)
         self._emit_intervals(out, final)
         self._trim()
 
-    def _crossing_integrals(self, t_abs: F64) -> tuple[I64, F64]:
+    def _extend_own_chains(self) -> None:
+        """Extend every channel's own crossing chain from its own candidates only."""
+        for c in range(self.channels):
+            st = self._own_chain[c]
+            new_t, _ = extend_chain([self._own_cand[c]], [self._horizon[c]], st, self._hp,
+                                    3.0 * self._hp)
+            if not new_t.shape[0]:
+                continue
+            whole, rest = self._crossing_integrals(new_t, c)
+            self._oc_t[c] = np.concatenate([self._oc_t[c], new_t])
+            self._oc_p[c] = np.concatenate([self._oc_p[c], whole], axis=1)
+            self._oc_r[c] = np.concatenate([self._oc_r[c], rest], axis=1)
+            cand = self._own_cand[c]
+            floor = float(st.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
+            self._own_cand[c] = cand[np.searchsorted(cand, floor):]
+
+    def _own_windows(self, ends: F64, urms: F64, dc: F64 | None) -> None:
+        """Replace urms[:, c] by channel c's own Urms(1/2): the one-cycle window on c's own
+        crossings that ended last at or before each row's end (in place). Rows before c's
+        chain holds a whole window keep the shared-chain value. Crossings no later row can
+        need are dropped."""
+        for c in range(self.channels):
+            t = self._oc_t[c]
+            idx = np.searchsorted(t, ends, side="right") - 1
+            j = idx - 2
+            ok = j >= 0
+            if ok.any():
+                hi, lo = idx[ok], j[ok]
+                pc, rc = self._oc_p[c], self._oc_r[c]
+                d = (pc[:, hi] - pc[:, lo]).astype(np.float64)
+                d += rc[:, hi]
+                d -= rc[:, lo]
+                sc = self.scale[c]
+                span = t[hi] - t[lo]
+                msq = d[1] * (sc * sc) / span
+                mean = d[0] * sc / span
+                if dc is not None:
+                    urms[ok, c] = rms_without_dc(msq, mean, dc[ok, c])
+                else:
+                    urms[ok, c] = np.sqrt(np.maximum(msq, 0.0))
+            drop = int(idx[-1]) - 3
+            if drop > 0:
+                self._oc_t[c] = t[drop:]
+                self._oc_p[c] = self._oc_p[c][:, drop:]
+                self._oc_r[c] = self._oc_r[c][:, drop:]
+
+    def _crossing_integrals(self, t_abs: F64, channel: int | None = None) -> tuple[I64, F64]:
         """Integrals of the piecewise-linear interpolant of the counts x [0] and of x² [1]
         from the origin of the running sums to each crossing [count · samples, count² ·
         samples], (2, m, channels), as an exact integer part (the running sum at the
@@ -366,6 +423,12 @@ class MeasurementEngine:
         w1 *= 0.5                          # weight of (v1 - v0): integral of the slope
         w0 = frac + 0.5                    # weight of v0 (its half-trapezoid included)
         w0 -= w1
+        if channel is not None:            # one channel: (2, m, 3)
+            pc = self._p[:, rows, channel]
+            dc = pc[:, :, 1:] - pc[:, :, :-1]
+            rest_c = dc[:, :, 0] * w0[:, 0]
+            rest_c += dc[:, :, 1] * w1[:, 0]
+            return pc[:, :, 0], rest_c
         p = self._p[:, rows]               # (2, m, 3, channels)
         d = p[:, :, 1:] - p[:, :, :-1]     # samples at the floor and the next row, exact
         rest = d[:, :, 0] * w0
@@ -381,12 +444,22 @@ class MeasurementEngine:
         d *= self._scale_xq
         return d[1], d[0]
 
-    def _emit_windows(self, out: _Out) -> None:
+    def _emit_windows(self, out: _Out, final: bool = False) -> None:
         base = self._cx_base
         k0, k1 = self._next_win, base + self._cx_t.shape[0] - 2
         if k1 <= k0:
             return
         lo, hi = k0 - base, k1 - base
+        if not final:
+            # A row waits until every channel's own chain is final past its end.
+            lasts = [st.last for st in self._own_chain]
+            if any(v is None for v in lasts):
+                return
+            limit = min(float(v) for v in lasts if v is not None)
+            hi = lo + int(np.searchsorted(self._cx_t[lo + 2:hi + 2], limit, side="right"))
+            if hi <= lo:
+                return
+            k1 = base + hi
         a = self._cx_t[lo:hi]
         b = self._cx_t[lo + 2:hi + 2]
         iq, ix = self._between(slice(lo, hi), slice(lo + 2, hi + 2))
@@ -398,7 +471,9 @@ class MeasurementEngine:
             self._cx_dc[lo:hi] = dc
             urms = rms_without_dc(msq, mean, dc)
         else:
+            dc = None
             urms = np.sqrt(np.maximum(msq, 0.0))
+        self._own_windows(b, urms, dc)
         syn = self._cx_syn
         synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
         synthetic |= syn[lo + 2:hi + 2]
@@ -451,6 +526,9 @@ class MeasurementEngine:
         """Basic intervals that became complete: first crossing (global index) and cycles."""
         base, n = self._cx_base, self._cx_t.shape[0]
         total = base + n
+        if not final:          # an interval's flag needs every window that overlaps it
+            total = min(total, self._next_win + 2)
+            n = total - base
         i0 = self._iv_start
         step = 2 * self._cycles
         if i0 - base < n and self._cx_p10[i0 - base] == self._cx_p10[n - 1]:
@@ -550,6 +628,9 @@ class MeasurementEngine:
             keep_sample = math.floor(first) - 2
         else:
             keep_sample = math.floor(self._chain.anchor) - 2
+        for st in self._own_chain:       # each channel's next crossing needs its samples
+            own = st.anchor if st.last is None else st.last
+            keep_sample = min(keep_sample, math.floor(own) - 2)
         cut = min(keep_sample - self._buf_start, self._wave.shape[1])
         if cut > 0:
             self._wave = self._wave[:, cut:]
