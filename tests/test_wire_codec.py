@@ -33,6 +33,7 @@ from agent.wire.codec import (
 )
 from agent.wire.errors import WireError
 from agent.wire.records import SecondRecord, SummaryBatcher
+from agent.wire.validate import default_validator
 
 
 @pytest.mark.parametrize("kind", ["summary", "aggregate", "event", "capture", "status", "gap",
@@ -41,7 +42,7 @@ def test_every_message_type_round_trips(kind: str) -> None:
     msg = sample_messages()[kind]
     back = decode(encode(msg))
     assert back == msg  # msgpack preserves ints, floats (float64), str, bytes exactly
-    assert back["type"] == kind and back["v"] == 1
+    assert back["type"] == kind and back["v"] == default_validator().versions[kind]
 
 
 def test_identity_is_on_every_device_message() -> None:
@@ -198,8 +199,8 @@ def test_nan_in_msgpack_float32_is_rejected() -> None:
 
 
 def test_unknown_version_and_type_are_rejected() -> None:
-    err = _reason(_with("event", v=2))
-    assert err.code == "unknown_version" and "v=1" in err.reason
+    err = _reason(_with("event", v=3))
+    assert err.code == "unknown_version" and "v=1, 2" in err.reason
     assert _reason(_with("event", v=True)).code == "unknown_version"  # bool is not 1
     assert _reason(_with("event", type="telemetry")).code == "unknown_type"
 

@@ -51,7 +51,10 @@ def test_schema_files_are_valid_draft_2020_12() -> None:
         schema = json.loads(path.read_text())
         assert schema["$schema"] == "https://json-schema.org/draft/2020-12/schema"
         jsonschema.Draft202012Validator.check_schema(schema)  # JSON Schema 2020-12 metaschema
-        assert schema["properties"]["v"]["const"] == 1
+        vspec = schema["properties"]["v"]
+        # Every schema still reads v1: older devices' messages stay valid after a bump.
+        assert vspec.get("const") == 1 or (1 in vspec["enum"] and vspec["enum"] == sorted(
+            set(vspec["enum"])))
 
 
 def test_shared_definitions_are_identical_in_every_file() -> None:
@@ -213,6 +216,16 @@ def test_validator_loads_a_new_version_from_the_folder(tmp_path: Path) -> None:
     with pytest.raises(WireError) as err:
         Validator(tmp_path).validate(sample_messages()["gap"])
     assert err.value.code == "unknown_version" and "v=2" in err.value.reason
+
+
+def test_event_v1_and_v2_are_both_read_and_v2_is_written() -> None:
+    # A v1 dip from a device not yet upgraded stays valid; an RVC needs v2's kind.
+    v1 = sample_messages()["event"] | {"v": 1}
+    assert default_validator().validate(v1) == "event" and js_valid(v1, "event")
+    assert default_validator().versions["event"] == 2
+    with pytest.raises(WireError) as err:
+        default_validator().validate(v1 | {"v": 3})
+    assert err.value.code == "unknown_version" and "v=1, 2" in err.value.reason
 
 
 def test_times_are_documented_as_utc_seconds() -> None:

@@ -53,7 +53,15 @@ def event_record(ev: Event) -> dict[str, Any]:
         "enclosing_level_v": _num(ev.enclosing_level_v, 3),
         "ended_by": ev.ended_by,
         "en50160_cell": c.get("en50160_dip_cell") or c.get("en50160_swell_cell"),
+        **_rvc_fields(ev),
     }
+
+
+def _rvc_fields(ev: Event) -> dict[str, Any]:
+    """ΔUmax and ΔUss [V] of a rapid voltage change (nothing for other kinds)."""
+    if ev.kind != "rvc":
+        return {}
+    return {"delta_umax_v": _num(ev.delta_umax_v, 3), "delta_uss_v": _num(ev.delta_uss_v, 3)}
 
 
 @dataclass

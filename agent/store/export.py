@@ -55,7 +55,8 @@ a misspelt category can never grow the tag space.
     ``momentary_sag``), ``itic`` (no_interruption / no_damage / prohibited), ``semi_f47``
     (inside / outside), ``severity_class`` (``within_curve`` when the IEEE 1564 sag severity
     Se ≤ 1, ``beyond_curve`` above), ``ended_by``; fields ``level_pu, level_v, duration_s,
-    severity, sag_energy_s, end_uncertainty_s, time_error_s``; time = event start.
+    severity, sag_energy_s, end_uncertainty_s, time_error_s`` and, for rapid voltage changes
+    (kind ``rvc``), ``delta_umax_v, delta_uss_v``; time = event start.
 ``hc_event_open``  (started, not yet ended) tags ``site, device, kind``; fields
     ``level_pu, level_v``; time = event start. The ended event goes to ``hc_event``, so
     counting ``hc_event`` never counts an event twice.
@@ -100,7 +101,7 @@ Precision = Literal["s", "ms", "us", "ns"]
 _TICKS_PER_SECOND: dict[str, int] = {"s": 1, "ms": 10**3, "us": 10**6, "ns": 10**9}
 
 # --- enumerations (tag vocabularies) -----------------------------------------------------------
-EVENT_KINDS = frozenset({"dip", "swell", "interruption"})
+EVENT_KINDS = frozenset({"dip", "swell", "interruption", "rvc"})
 END_REASONS = frozenset({"recovery", "power_loss", "end_of_data"})
 # IEEE 1159 categories (1995/2009 tables).
 IEEE1159_CATEGORIES = frozenset({
@@ -451,7 +452,9 @@ def event_points(payload: Mapping[str, Any], precision: Precision) -> list[LineP
     fields = _fields(level_pu=level_pu, level_v=level_v, duration_s=duration, severity=severity,
                      sag_energy_s=_opt_number(payload, "sag_energy_s", kind),
                      end_uncertainty_s=_opt_number(payload, "end_uncertainty_s", kind),
-                     time_error_s=_opt_number(sync, "error_s", kind))
+                     time_error_s=_opt_number(sync, "error_s", kind),
+                     delta_umax_v=_opt_number(payload, "delta_umax_v", kind),
+                     delta_uss_v=_opt_number(payload, "delta_uss_v", kind))
     return [LinePoint("hc_event", tags, fields, ts)]
 
 

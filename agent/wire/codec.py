@@ -38,6 +38,10 @@ from agent.wire.topics import check_id, parse_topic
 from agent.wire.validate import validate
 
 SCHEMA_VERSION = 1
+# The version written per message type where it moved on (schemas/*.schema.json list the
+# versions still read): event v2 adds rapid voltage changes (kind "rvc", delta_umax_v,
+# delta_uss_v, rvc_threshold, rvc_hysteresis).
+WRITE_VERSIONS = {"event": 2}
 F64 = npt.NDArray[np.float64]
 
 # Largest message decode() accepts by default [bytes]; capture chunks are bounded by the MQTT
@@ -143,7 +147,7 @@ def decode_from_topic(topic: str, data: bytes, *,
 
 
 def _body(msg_type: str, /, **fields: Any) -> dict[str, Any]:
-    return {"v": SCHEMA_VERSION, "type": msg_type, **fields}
+    return {"v": WRITE_VERSIONS.get(msg_type, SCHEMA_VERSION), "type": msg_type, **fields}
 
 
 def _opt_float(x: float | None, what: str) -> float | None:
@@ -295,6 +299,11 @@ def event_body(
         classification=None if event.classification is None else _plain(event.classification),
         classifier_version=classifier_version,
     )
+    if event.kind == "rvc":
+        body["delta_umax_v"] = _req_float(event.delta_umax_v or 0.0, "delta_umax_v")
+        body["delta_uss_v"] = _req_float(event.delta_uss_v or 0.0, "delta_uss_v")
+        body["rvc_threshold"] = _opt_float(event.rvc_threshold, "rvc_threshold")
+        body["rvc_hysteresis"] = _opt_float(event.rvc_hysteresis, "rvc_hysteresis")
     if channel_names is not None:
         body["channel_names"] = list(channel_names)
     return body
@@ -333,6 +342,9 @@ def event_from_message(msg: Mapping[str, Any]) -> EventMessage:
         ended_by=msg["ended_by"], end_uncertainty_s=opt(msg["end_uncertainty_s"]),
         time_error_s=opt(msg["sync"]["error_s"]), sync_state=msg["sync"]["state"],
         classification=None if msg["classification"] is None else dict(msg["classification"]),
+        delta_umax_v=opt(msg.get("delta_umax_v")), delta_uss_v=opt(msg.get("delta_uss_v")),
+        rvc_threshold=opt(msg.get("rvc_threshold")),
+        rvc_hysteresis=opt(msg.get("rvc_hysteresis")),
     )
     names = msg.get("channel_names")
     return EventMessage(

@@ -696,6 +696,8 @@ class Validator:
         folder = folder or schemas_dir()
         self.schemas: dict[str, dict[str, Any]] = {}
         self.versions: dict[str, int] = {}
+        """The version this build writes, per message type (the highest it reads)."""
+        self.accepted_versions: dict[str, frozenset[int]] = {}
         self._checks: dict[str, Check] = {}
         self._strict: dict[str, Check] = {}
         self._ok: dict[str, Pred] = {}
@@ -709,13 +711,18 @@ class Validator:
                 schema = json.loads(f.read_text(encoding="utf-8"))
             except json.JSONDecodeError as exc:
                 raise SchemaLoadError(f"{f}: not valid JSON: {exc}") from None
-            v = schema.get("properties", {}).get("v", {}).get("const")
+            vspec = schema.get("properties", {}).get("v", {})
+            # One version (const), or several this build still reads (enum; it writes the
+            # highest): an older device's messages stay valid after a schema gains fields.
+            accepted = [vspec["const"]] if "const" in vspec else list(vspec.get("enum", []))
             t = schema.get("properties", {}).get("type", {}).get("const")
-            if not isinstance(v, int) or t != kind:
+            if (not accepted or not all(isinstance(v, int) and not isinstance(v, bool)
+                                        for v in accepted) or t != kind):
                 raise SchemaLoadError(
-                    f"{f}: needs properties.v.const (int) and type.const {kind!r}")
+                    f"{f}: needs properties.v.const or .enum (ints) and type.const {kind!r}")
             self.schemas[kind] = schema
-            self.versions[kind] = v
+            self.versions[kind] = max(accepted)
+            self.accepted_versions[kind] = frozenset(accepted)
             self._checks[kind] = _Compiler(schema, f.name, strict_int=False).compile(schema)
             self._strict[kind] = _Compiler(schema, f.name, strict_int=True).compile(schema)
             self._ok[kind] = _Compiler(schema, f.name, strict_int=False).predicate(schema)
@@ -741,9 +748,10 @@ class Validator:
         v = msg.get("v")
         if "v" not in msg:
             raise WireError("$: missing required property 'v'", "schema")
-        if isinstance(v, bool) or not isinstance(v, int) or v != self.versions[kind]:
+        if isinstance(v, bool) or not isinstance(v, int) or v not in self.accepted_versions[kind]:
+            reads = ", ".join(map(str, sorted(self.accepted_versions[kind])))
             raise WireError(f"$.v: unsupported schema version {_describe(v)} for {kind} "
-                            f"(this build reads v={self.versions[kind]})", "unknown_version")
+                            f"(this build reads v={reads})", "unknown_version")
         try:
             ok = (self._strict_ok if semantic else self._ok)[kind](msg)
             if not ok:
