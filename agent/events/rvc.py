@@ -70,10 +70,11 @@ def steady_windows(u: F64, n: int, band_v: float) -> tuple[B1, F64]:
     Returns ``ok`` (rows - n + 1,) and ``mean`` (rows - n + 1, channels) [V]; row k describes
     the window u[k : k + n].
     """
-    win = sliding_window_view(u, n, axis=0)              # (m, channels, n)
-    mean = win.mean(axis=-1)
-    ok = ((win.max(axis=-1) - mean <= band_v) & (mean - win.min(axis=-1) <= band_v)).all(axis=1)
-    return np.asarray(ok), np.asarray(mean)
+    x = np.ascontiguousarray(u.T)                          # (channels, rows): fast reductions
+    win = sliding_window_view(x, n, axis=1)                # (channels, m, n)
+    mean = win.sum(axis=-1) / n
+    ok = ((win.max(axis=-1) - mean <= band_v) & (mean - win.min(axis=-1) <= band_v)).all(axis=0)
+    return np.asarray(ok), np.asarray(mean.T)
 
 
 class RvcDetector:

@@ -361,19 +361,29 @@ class MeasurementEngine:
 
     def _extend_own_chains(self) -> None:
         """Extend every channel's own crossing chain from its own candidates only."""
+        news: list[F64] = []
         for c in range(self.channels):
             st = self._own_chain[c]
             new_t, _ = extend_chain([self._own_cand[c]], [self._horizon[c]], st, self._hp,
                                     3.0 * self._hp)
-            if not new_t.shape[0]:
-                continue
-            whole, rest = self._crossing_integrals(new_t, c)
-            self._oc_t[c] = np.concatenate([self._oc_t[c], new_t])
-            self._oc_p[c] = np.concatenate([self._oc_p[c], whole], axis=1)
-            self._oc_r[c] = np.concatenate([self._oc_r[c], rest], axis=1)
-            cand = self._own_cand[c]
-            floor = float(st.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
-            self._own_cand[c] = cand[np.searchsorted(cand, floor):]
+            news.append(new_t)
+            if new_t.shape[0]:
+                cand = self._own_cand[c]
+                floor = float(st.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
+                self._own_cand[c] = cand[np.searchsorted(cand, floor):]
+        counts = [t.shape[0] for t in news]
+        if not any(counts):
+            return
+        # One pass for every channel's new crossings (each reads its own column).
+        chan = np.repeat(np.arange(self.channels), counts)
+        whole, rest = self._crossing_integrals(np.concatenate(news), chan)
+        cuts = np.cumsum(counts)[:-1]
+        for c, (t, w, r) in enumerate(zip(news, np.split(whole, cuts, axis=1),
+                                          np.split(rest, cuts, axis=1), strict=True)):
+            if t.shape[0]:
+                self._oc_t[c] = np.concatenate([self._oc_t[c], t])
+                self._oc_p[c] = np.concatenate([self._oc_p[c], w], axis=1)
+                self._oc_r[c] = np.concatenate([self._oc_r[c], r], axis=1)
 
     def _own_windows(self, ends: F64, urms: F64, dc: F64 | None) -> None:
         """Replace urms[:, c] by channel c's own Urms(1/2): the one-cycle window on c's own
@@ -405,7 +415,8 @@ class MeasurementEngine:
                 self._oc_p[c] = self._oc_p[c][:, drop:]
                 self._oc_r[c] = self._oc_r[c][:, drop:]
 
-    def _crossing_integrals(self, t_abs: F64, channel: int | None = None) -> tuple[I64, F64]:
+    def _crossing_integrals(self, t_abs: F64, channel: npt.NDArray[np.intp] | None = None
+                            ) -> tuple[I64, F64]:
         """Integrals of the piecewise-linear interpolant of the counts x [0] and of x² [1]
         from the origin of the running sums to each crossing [count · samples, count² ·
         samples], (2, m, channels), as an exact integer part (the running sum at the
@@ -423,8 +434,8 @@ class MeasurementEngine:
         w1 *= 0.5                          # weight of (v1 - v0): integral of the slope
         w0 = frac + 0.5                    # weight of v0 (its half-trapezoid included)
         w0 -= w1
-        if channel is not None:            # one channel: (2, m, 3)
-            pc = self._p[:, rows, channel]
+        if channel is not None:            # one channel per crossing: (2, m, 3)
+            pc = self._p[:, rows, channel[:, None]]
             dc = pc[:, :, 1:] - pc[:, :, :-1]
             rest_c = dc[:, :, 0] * w0[:, 0]
             rest_c += dc[:, :, 1] * w1[:, 0]
