@@ -66,3 +66,42 @@ def test_rvc_event_exports_with_its_deltas() -> None:
     assert tags["kind"] == "rvc"
     assert fields["delta_uss_v"] == pytest.approx(4.8)
     assert fields["delta_umax_v"] == pytest.approx(4.8)
+
+
+def _aggregate_message() -> dict[str, object]:
+    import math
+
+    from agent.measurement.types import Aggregate
+    from agent.wire.codec import aggregate_body
+
+    h = [0.0] * 39
+    h[1], h[3] = 0.0412, 0.0305                  # h3, h5 (invented)
+    agg = Aggregate(kind="10min", t_utc=1_700_000_400.0, duration_s=600.0, rms=(120.1, 119.7),
+                    thd=(0.052, 0.051), count=3000,
+                    harmonics=(tuple(h), tuple([math.nan] * 39)))
+    body = aggregate_body(agg, ["L1", "L2"]) | {"device": "dev-1", "site": "site-1",
+                                                 "epoch": "e1", "seq": 7}
+    validate(body)
+    return body
+
+
+def test_ten_minute_harmonics_are_stored_compact_and_exported() -> None:
+    from agent.store.export import aggregate_points
+    from agent.wire.codec import aggregate_from_message, decode, encode
+
+    body = _aggregate_message()
+    raw = encode(body)
+    back = aggregate_from_message(decode(raw))
+    assert back.harmonics[0][1] == pytest.approx(0.0412) and back.harmonics[1] == ()
+    # Compact: 39 orders of one channel cost well under 2 bytes each on the wire.
+    assert len(encode(body)) - len(encode({k: v for k, v in body.items() if k != "harmonics"})
+                                    ) < 2 * 39 + 30
+    pts = {dict(p.tags)["channel"]: dict(p.fields) for p in aggregate_points(body, "s")}
+    assert pts["L1"]["h3"] == pytest.approx(0.0412) and pts["L1"]["h5"] == pytest.approx(0.0305)
+    assert "h3" not in pts["L2"]
+
+
+def test_ten_minute_harmonics_reach_the_store(store: RecorderStore) -> None:  # noqa: F811
+    store.commit_batch([_aggregate_message()])
+    (row,) = store.aggregates("dev-1")
+    assert row["payload"]["harmonics"]["values"][0][1] == 412

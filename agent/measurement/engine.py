@@ -31,6 +31,7 @@ from agent.measurement.conditioning import (
 )
 from agent.measurement.frequency import whole_cycles
 from agent.measurement.harmonics import (
+    harmonic_ratios,
     max_harmonic_order,
     resample_points,
     thd_from_subgroups,
@@ -170,6 +171,11 @@ class MeasurementEngine:
         self._g3: list[tuple[float, float, F64, F64, bool]] = []
         self._g3_period: int | None = None
         self._g10: list[tuple[F64, F64, bool]] = []
+        # Individual harmonics h2..H over the open 10-min period: sums of squared ratios and
+        # counts of finite values, per channel and order.
+        nh = max(self._order - 1, 0)
+        self._g10_h2 = np.zeros((c, nh))
+        self._g10_hn = np.zeros((c, nh), np.int64)
         self._g10_period: int | None = None
         self._f_period: int | None = None
         self._f_utc: list[float] = []
@@ -594,6 +600,7 @@ class MeasurementEngine:
         rms = rms_without_dc(msq, mean, self._cx_dc[i0s])
         thd = np.full(rms.shape, np.nan)
         imb = np.full(cyc.shape[0], np.nan)
+        hr2 = np.zeros((cyc.shape[0], self.channels, max(self._order - 1, 0)))
         # Spectra in batches so a huge block (a whole file at once) keeps memory bounded.
         for b0 in range(0, cyc.shape[0], SPECTRA_BATCH):
             sl = slice(b0, b0 + SPECTRA_BATCH)
@@ -602,8 +609,12 @@ class MeasurementEngine:
                                          max(self._order, 1), self._points, self._frac)
             if self._order >= 2:                # else the sample rate allows no harmonic
                 thd[sl] = thd_from_subgroups(ysg).T
+                hr2[sl] = np.square(harmonic_ratios(ysg)).transpose(1, 0, 2)
             if self._imbalance == "u2":         # fundamental phasors, (m, 3)
                 imb[sl] = negative_sequence_ratio(fund.T)
+        # Individual harmonics need the 5 Hz bins of a whole basic interval (IEC 61000-4-7):
+        # the short interval before a 10-min tick or at the end of data is left out.
+        hr2[cyc != self._cycles] = np.nan
         if self._imbalance == "split":
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)
@@ -617,7 +628,7 @@ class MeasurementEngine:
         flag_list = flagged.tolist()
         for k in range(cyc.shape[0]):
             self._aggregate_interval(out, utc0[k], utc1[k], p10[k], rms[k], thd[k],
-                                     flag_list[k])
+                                     flag_list[k], hr2[k])
 
     def _trim(self) -> None:
         base = self._cx_base
@@ -662,7 +673,7 @@ class MeasurementEngine:
 
     # ------------------------------------------------------------------ aggregation
     def _aggregate_interval(self, out: _Out, t0: float, t1: float, p10: int, rms: F64,
-                            thd: F64, flagged: bool) -> None:
+                            thd: F64, flagged: bool, hr2: F64 | None = None) -> None:
         if self._g3 and self._g3_period != p10:
             self._emit_3s(out)                     # resynchronised at the 10-min tick
         if self._g10 and self._g10_period != p10:
@@ -670,6 +681,10 @@ class MeasurementEngine:
         self._g3_period = self._g10_period = p10
         self._g3.append((t0, t1, rms, thd, flagged))
         self._g10.append((rms, thd, flagged))
+        if hr2 is not None and hr2.shape[-1]:
+            ok = np.isfinite(hr2)
+            self._g10_h2 += np.where(ok, hr2, 0.0)
+            self._g10_hn += ok
         if len(self._g3) == INTERVALS_PER_3S:
             self._emit_3s(out)
 
@@ -692,8 +707,18 @@ class MeasurementEngine:
             kind="10min", t_utc=self._g10_period * TEN_MIN_S, duration_s=TEN_MIN_S,
             rms=tuple(float(v) for v in rms_aggregate(np.array([r[0] for r in g]))),
             thd=tuple(float(v) for v in rms_aggregate(np.array([r[1] for r in g]))),
-            flagged=any(r[2] for r in g), count=len(g)))
+            flagged=any(r[2] for r in g), count=len(g), harmonics=self._harmonics_10min()))
         self._g10 = []
+
+    def _harmonics_10min(self) -> tuple[tuple[float, ...], ...]:
+        """RMS of each channel's h2..H ratios over the period; resets the sums."""
+        if not self._g10_h2.shape[-1]:
+            return ()
+        n = self._g10_hn
+        h = np.sqrt(np.divide(self._g10_h2, n, out=np.full(n.shape, np.nan), where=n > 0))
+        self._g10_h2 = np.zeros_like(self._g10_h2)
+        self._g10_hn = np.zeros_like(self._g10_hn)
+        return tuple(tuple(float(v) for v in row) for row in h)
 
     def _feed_freq(self, out: _Out, utc: F64, syn: BOOL, flagged: BOOL) -> None:
         if utc.shape[0] == 0:

@@ -258,6 +258,27 @@ def thd_from_subgroups(ysg: F64) -> F64:
     return np.divide(rest, fund, out=np.full(fund.shape, np.nan), where=fund > 0)
 
 
+def harmonic_ratios(ysg: F64) -> F64:
+    """Individual harmonic subgroups h = 2..H as fractions of the fundamental subgroup.
+
+    Parameters
+    ----------
+    ysg : (..., H)  [V], subgroups of orders 1..H
+
+    Returns
+    -------
+    ratios : (..., H - 1)  [fraction of Ysg_1]; NaN where Ysg_1 = 0
+
+    References
+    ----------
+    IEC 61000-4-7 Ed.2 clause 5.6 (harmonic subgroup); EN 50160 and IEEE 519 state individual
+    harmonic voltages relative to the fundamental.
+    """
+    fund = ysg[..., :1]
+    out = np.full(ysg[..., 1:].shape, np.nan)
+    return np.divide(ysg[..., 1:], fund, out=out, where=fund > 0)
+
+
 def window_thd(x: npt.ArrayLike, start: npt.ArrayLike, end: npt.ArrayLike, cycles: npt.ArrayLike,
                sample_rate: float, fundamental_hz: float, max_order: int = 40) -> F64:
     """THD [fraction] of each window of ``cycles`` whole cycles between ``start`` and ``end``.

@@ -75,6 +75,10 @@ class Aggregate:
     hz: float | None = None
     flagged: bool = False
     count: int = 0
+    harmonics: tuple[tuple[float, ...], ...] = ()
+    """10-min only: per channel, harmonic subgroups h2..h40 (as far as the sample rate
+    allows) as fractions of the fundamental, RMS over the period's 10/12-cycle values
+    (IEC 61000-4-7 subgroups, IEC 61000-4-30 cl. 4.5 aggregation); NaN where none."""
 
 
 @dataclass

@@ -48,7 +48,8 @@ a misspelt category can never grow the tag space.
 ``hc_trend_device``  (summary) tags ``site, device``; fields ``hz`` [Hz], ``imbalance``
     [fraction], ``flags`` (bitmask), ``event`` (0/1); time = start of each second.
 ``hc_aggregate``  tags ``site, device, channel, interval`` (the aggregate ``kind``: 3s, 10s,
-    10min, ...); fields ``rms`` [V], ``thd`` [fraction], ``flagged`` (0/1), ``count``.
+    10min, ...); fields ``rms`` [V], ``thd`` [fraction], ``flagged`` (0/1), ``count``, and
+    on 10-min aggregates (v2) ``h2`` .. ``h40`` [fraction of the fundamental].
 ``hc_aggregate_device``  tags ``site, device, interval``; fields ``hz`` [Hz], ``flagged``,
     ``count`` (frequency aggregates).
 ``hc_event``  (ended event) tags ``site, device, kind, category`` (IEEE 1159, e.g.
@@ -305,6 +306,31 @@ def _message_timestamp(payload: Mapping[str, Any], kind: str, precision: Precisi
     return to_timestamp(_number(t, "t", kind), precision)
 
 
+def _harmonic_fields(payload: Mapping[str, Any], channels: int, kind: str
+                     ) -> list[dict[str, float | None]]:
+    """Per channel ``{"h2": fraction, ...}`` from an aggregate's v2 ``harmonics`` (or empty)."""
+    field = payload.get("harmonics")
+    if not field:
+        return [{} for _ in range(channels)]
+    if not isinstance(field, Mapping) or not isinstance(field.get("values"), list):
+        raise PayloadError(kind, "harmonics must be a map with a values list")
+    first = field.get("first", 2)
+    exp = field.get("exp", -4)
+    if not all(isinstance(x, int) and not isinstance(x, bool) for x in (first, exp)):
+        raise PayloadError(kind, "harmonics first and exp must be integers")
+    rows = list(field["values"]) + [None] * channels
+    out: list[dict[str, float | None]] = []
+    for row in rows[:channels]:
+        if row is None:
+            out.append({})
+            continue
+        if not isinstance(row, list):
+            raise PayloadError(kind, "harmonics values must be lists")
+        out.append({f"h{first + i}": (None if x is None else _number(x, "harmonics", kind)
+                                      * 10.0 ** exp) for i, x in enumerate(row)})
+    return out
+
+
 def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoint]:
     """``hc_aggregate`` points per channel and an ``hc_aggregate_device`` point (frequency)
     for one ``aggregate`` message (schemas/aggregate.schema.json)."""
@@ -324,14 +350,15 @@ def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[L
         raise PayloadError(kind, "count must be an integer")
     interval = _enum(_first(payload, "kind", "interval") or "10min", AGGREGATE_INTERVALS,
                      "interval")
+    harm = _harmonic_fields(payload, len(names), kind)
     out = []
-    for name, r, h in zip(names, rms, thd, strict=True):
+    for name, r, h, hf in zip(names, rms, thd, harm, strict=True):
         if r is None and h is None:
             continue
         out.append(LinePoint("hc_aggregate",
                              (("channel", name), ("device", device), ("interval", interval),
                               ("site", site)),
-                             _fields(rms=r, thd=h, flagged=int(flagged), count=count), ts))
+                             _fields(rms=r, thd=h, flagged=int(flagged), count=count, **hf), ts))
     hz = _opt_number(payload, "hz", kind)
     if hz is not None:
         out.append(LinePoint("hc_aggregate_device",

@@ -41,7 +41,9 @@ SCHEMA_VERSION = 1
 # The version written per message type where it moved on (schemas/*.schema.json list the
 # versions still read): event v2 adds rapid voltage changes (kind "rvc", delta_umax_v,
 # delta_uss_v, rvc_threshold, rvc_hysteresis).
-WRITE_VERSIONS = {"event": 2}
+# Aggregate v2 adds the 10-min "harmonics" (and "flicker").
+WRITE_VERSIONS = {"event": 2, "aggregate": 2}
+HARMONIC_EXP = -4          # individual harmonics travel in units of 0.01 % of the fundamental
 F64 = npt.NDArray[np.float64]
 
 # Largest message decode() accepts by default [bytes]; capture chunks are bounded by the MQTT
@@ -237,12 +239,34 @@ def summary_arrays(msg: Mapping[str, Any]) -> SummaryArrays:
 
 def aggregate_body(agg: Aggregate, channels: Iterable[str]) -> dict[str, Any]:
     """A measurement :class:`Aggregate` as a message body (NaN per-channel values -> null)."""
-    return _body(
+    body = _body(
         "aggregate", kind=agg.kind, t=_req_float(agg.t_utc, "t_utc"),
         duration_s=_req_float(agg.duration_s, "duration_s"), channels=list(channels),
         rms=[_opt_float(x, "rms") for x in agg.rms], thd=[_opt_float(x, "thd") for x in agg.thd],
         hz=_opt_float(agg.hz, "hz"), flagged=bool(agg.flagged), count=int(agg.count),
     )
+    if agg.harmonics:
+        body["harmonics"] = harmonics_field(agg.harmonics)
+    return body
+
+
+def harmonics_field(per_channel: Iterable[Iterable[float]]) -> dict[str, Any]:
+    """Per-channel h2.. ratios [fraction] as compact integers of 10^HARMONIC_EXP (NaN -> null)."""
+    unit = 10.0 ** HARMONIC_EXP
+    values: list[list[int | None] | None] = []
+    for row in per_channel:
+        q = [None if not math.isfinite(v) else round(v / unit) for v in row]
+        values.append(None if all(x is None for x in q) else q)
+    return {"first": 2, "exp": HARMONIC_EXP, "values": values}
+
+
+def harmonics_from_field(field: Mapping[str, Any] | None) -> tuple[tuple[float, ...], ...]:
+    """Inverse of :func:`harmonics_field`: per channel h2.. [fraction], NaN for null."""
+    if not field:
+        return ()
+    unit = 10.0 ** int(field["exp"])
+    return tuple(() if row is None else tuple(math.nan if x is None else x * unit for x in row)
+                 for row in field["values"])
 
 
 def aggregate_from_message(msg: Mapping[str, Any]) -> Aggregate:
@@ -253,7 +277,7 @@ def aggregate_from_message(msg: Mapping[str, Any]) -> Aggregate:
         kind=msg["kind"], t_utc=float(msg["t"]), duration_s=float(msg["duration_s"]),
         rms=tuple(f(x) for x in msg["rms"]), thd=tuple(f(x) for x in msg["thd"]),
         hz=None if msg["hz"] is None else float(msg["hz"]), flagged=bool(msg["flagged"]),
-        count=int(msg["count"]),
+        count=int(msg["count"]), harmonics=harmonics_from_field(msg.get("harmonics")),
     )
 
 
