@@ -1,5 +1,6 @@
-"""The recorder store carries the edge's newer message fields (event v2: rapid voltage
-changes) on a real SQLite file and a fresh PostgreSQL schema."""
+"""The recorder store and the exporter carry the edge's newer message fields (event v2: rapid
+voltage changes; aggregate v2: individual harmonics, flicker) on a real SQLite file and a
+fresh PostgreSQL schema."""
 
 from __future__ import annotations
 
@@ -78,10 +79,19 @@ def _aggregate_message() -> dict[str, object]:
     h[1], h[3] = 0.0412, 0.0305                  # h3, h5 (invented)
     agg = Aggregate(kind="10min", t_utc=1_700_000_400.0, duration_s=600.0, rms=(120.1, 119.7),
                     thd=(0.052, 0.051), count=3000,
-                    harmonics=(tuple(h), tuple([math.nan] * 39)))
+                    harmonics=(tuple(h), tuple([math.nan] * 39)), pst=(0.42, 0.39),
+                    plt=(0.40, 0.38), flicker_flagged=False, lamp="120V")
     body = aggregate_body(agg, ["L1", "L2"]) | {"device": "dev-1", "site": "site-1",
                                                  "epoch": "e1", "seq": 7}
     validate(body)
+    # Independent check: the general jsonschema validator agrees on the v2 schema.
+    import json
+
+    import jsonschema
+
+    from agent.wire.validate import schemas_dir
+    schema = json.loads((schemas_dir() / "aggregate.schema.json").read_text())
+    jsonschema.Draft202012Validator(schema).validate(body)
     return body
 
 
@@ -99,9 +109,13 @@ def test_ten_minute_harmonics_are_stored_compact_and_exported() -> None:
     pts = {dict(p.tags)["channel"]: dict(p.fields) for p in aggregate_points(body, "s")}
     assert pts["L1"]["h3"] == pytest.approx(0.0412) and pts["L1"]["h5"] == pytest.approx(0.0305)
     assert "h3" not in pts["L2"]
+    assert pts["L1"]["pst"] == pytest.approx(0.42) and pts["L2"]["plt"] == pytest.approx(0.38)
+    assert pts["L1"]["flicker_flagged"] == 0
+    assert back.pst == (0.42, 0.39) and back.plt == (0.40, 0.38) and back.lamp == "120V"
 
 
 def test_ten_minute_harmonics_reach_the_store(store: RecorderStore) -> None:  # noqa: F811
     store.commit_batch([_aggregate_message()])
     (row,) = store.aggregates("dev-1")
     assert row["payload"]["harmonics"]["values"][0][1] == 412
+    assert row["payload"]["flicker"]["pst"] == [0.42, 0.39]

@@ -29,6 +29,7 @@ from agent.measurement.conditioning import (
     boxcar_gain,
     boxcar_lengths,
 )
+from agent.measurement.flicker import FlickerInterval, FlickerMeter
 from agent.measurement.frequency import whole_cycles
 from agent.measurement.harmonics import (
     harmonic_ratios,
@@ -118,11 +119,15 @@ class MeasurementEngine:
         cycles cancel the offset's effect on them)
     band_fraction : zero-crossing hysteresis half-width [fraction of nominal peak]; below it
         no crossings are found and the nominal-period fallback takes over
+    flicker : run the IEC 61000-4-15 flickermeter (Pst/Plt on the 10-min aggregates, which
+        are then held until its interval is closed: at most about a second)
+    lamp : "230V" or "120V" weighting (default: 120V below 180 V declared, else 230V)
     """
 
     def __init__(self, info: SourceInfo, site: Site, thresholds: Thresholds, timebase: Timebase,
                  gains: npt.ArrayLike | None = None, *, dc_removal: bool = True,
-                 band_fraction: float = 0.08) -> None:
+                 band_fraction: float = 0.08, flicker: bool = True,
+                 lamp: str | None = None) -> None:
         c = info.channels
         if c < 1:
             raise ValueError("source has no channels")
@@ -182,6 +187,12 @@ class MeasurementEngine:
         self._f_syn: list[bool] = []
         self._f_flag = False
         self._wave: F32 = np.zeros((c, 0), np.float32)
+        # Flicker (IEC 61000-4-15): the lamp model follows the declared voltage by default.
+        self.lamp = lamp or ("120V" if site.nominal_v < 180.0 else "230V")
+        self._flicker = (FlickerMeter(fs, c, site.nominal_v, self.lamp, f0) if flicker
+                         else None)
+        self._flicker_done: dict[int, FlickerInterval] = {}
+        self._held: list[Aggregate] = []
         self._reset_signal(0)
 
     @property
@@ -192,6 +203,11 @@ class MeasurementEngine:
     # ------------------------------------------------------------------ public API
     def process(self, block: Block) -> MeasurementOutput:
         """Measure one block; returns what became complete with it."""
+        m = self._process(block)
+        m.aggregates = self._release(m.aggregates)
+        return m
+
+    def _process(self, block: Block) -> MeasurementOutput:
         out = _Out()
         counts = np.asarray(block.counts)
         if counts.ndim != 2 or counts.shape[1] != self.channels:
@@ -232,6 +248,9 @@ class MeasurementEngine:
         self._next = start + n
         out.flags.extend(self._quality.update(counts, start))
         f = self._casc.process_running_sums(self._append_samples(counts))
+        if self._flicker is not None:
+            for iv in self._flicker.feed(self._wave[:, -n:], start, self.timebase.to_utc):
+                self._flicker_done[iv.period] = iv
         head = self._settle_until - start
         if head > 0:
             f[: min(head, n)] = 0.0
@@ -250,7 +269,38 @@ class MeasurementEngine:
         self._emit_freq(out)
         out.flags.extend(self._quality.finish())
         self._next = None
-        return out.build(self.channels)
+        if self._flicker is not None:
+            for iv in self._flicker.finish():
+                self._flicker_done[iv.period] = iv
+        m = out.build(self.channels)
+        m.aggregates = self._release(m.aggregates, final=True)
+        return m
+
+    def _release(self, new: list[Aggregate], final: bool = False) -> list[Aggregate]:
+        """Aggregates in emission order, a 10-min one held (with all after it) until the
+        flickermeter has closed its interval, then given its Pst/Plt."""
+        if self._flicker is None:
+            return new
+        self._held.extend(new)
+        out: list[Aggregate] = []
+        front = self._flicker.frontier
+        reached = -math.inf if front is None else self.timebase.to_utc(float(front))
+        while self._held:
+            agg = self._held[0]
+            if agg.kind == "10min":
+                period = round(agg.t_utc / TEN_MIN_S)
+                iv = self._flicker_done.pop(period, None)
+                if iv is None and not final and reached < agg.t_utc + TEN_MIN_S:
+                    break                       # the flickermeter has not got there yet
+                if iv is not None:
+                    agg.pst = iv.pst
+                    agg.plt = iv.plt
+                    agg.flicker_flagged = iv.flagged or agg.flagged
+                    agg.lamp = self.lamp
+                for k in [k for k in self._flicker_done if k < period]:
+                    del self._flicker_done[k]   # intervals with no 10-min aggregate
+            out.append(self._held.pop(0))
+        return out
 
     # ------------------------------------------------------------------ signal chain
     def _reset_signal(self, anchor: int) -> None:

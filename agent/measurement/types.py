@@ -79,6 +79,15 @@ class Aggregate:
     """10-min only: per channel, harmonic subgroups h2..h40 (as far as the sample rate
     allows) as fractions of the fundamental, RMS over the period's 10/12-cycle values
     (IEC 61000-4-7 subgroups, IEC 61000-4-30 cl. 4.5 aggregation); NaN where none."""
+    pst: tuple[float, ...] = ()
+    """10-min only: short-term flicker severity per channel (IEC 61000-4-15); NaN where none."""
+    plt: tuple[float, ...] | None = None
+    """10-min aggregates ending a 2-h mark: long-term flicker severity per channel."""
+    flicker_flagged: bool = False
+    lamp: str = ""
+    """The flickermeter's lamp model ("230V" or "120V") when ``pst`` is set."""
+    """Pst not to be trusted: the flickermeter was settling, the interval is incomplete, or
+    it overlaps a dip, swell or interruption."""
 
 
 @dataclass

@@ -49,7 +49,8 @@ a misspelt category can never grow the tag space.
     [fraction], ``flags`` (bitmask), ``event`` (0/1); time = start of each second.
 ``hc_aggregate``  tags ``site, device, channel, interval`` (the aggregate ``kind``: 3s, 10s,
     10min, ...); fields ``rms`` [V], ``thd`` [fraction], ``flagged`` (0/1), ``count``, and
-    on 10-min aggregates (v2) ``h2`` .. ``h40`` [fraction of the fundamental].
+    on 10-min aggregates (v2) ``h2`` .. ``h40`` [fraction of the fundamental], ``pst``,
+    ``plt`` (at 2-h marks) and ``flicker_flagged`` (0/1).
 ``hc_aggregate_device``  tags ``site, device, interval``; fields ``hz`` [Hz], ``flagged``,
     ``count`` (frequency aggregates).
 ``hc_event``  (ended event) tags ``site, device, kind, category`` (IEEE 1159, e.g.
@@ -331,6 +332,25 @@ def _harmonic_fields(payload: Mapping[str, Any], channels: int, kind: str
     return out
 
 
+def _flicker_fields(payload: Mapping[str, Any], channels: int, kind: str
+                    ) -> list[dict[str, float | None]]:
+    """Per channel ``pst`` / ``plt`` (and ``flicker_flagged`` 0/1) from an aggregate's v2
+    ``flicker`` (or empty)."""
+    field = payload.get("flicker")
+    if not field:
+        return [{} for _ in range(channels)]
+    if not isinstance(field, Mapping) or not isinstance(field.get("pst"), list):
+        raise PayloadError(kind, "flicker must be a map with a pst list")
+    pst = (list(field["pst"]) + [None] * channels)[:channels]
+    plt = field.get("plt")
+    plt = (list(plt) + [None] * channels)[:channels] if isinstance(plt, list) else [None] * channels
+    flagged = 1.0 if field.get("flagged") else 0.0
+    return [{"pst": None if p is None else _number(p, "pst", kind),
+             "plt": None if q is None else _number(q, "plt", kind),
+             "flicker_flagged": flagged if p is not None else None}
+            for p, q in zip(pst, plt, strict=True)]
+
+
 def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoint]:
     """``hc_aggregate`` points per channel and an ``hc_aggregate_device`` point (frequency)
     for one ``aggregate`` message (schemas/aggregate.schema.json)."""
@@ -351,6 +371,8 @@ def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[L
     interval = _enum(_first(payload, "kind", "interval") or "10min", AGGREGATE_INTERVALS,
                      "interval")
     harm = _harmonic_fields(payload, len(names), kind)
+    for i, extra in enumerate(_flicker_fields(payload, len(names), kind)):
+        harm[i].update(extra)
     out = []
     for name, r, h, hf in zip(names, rms, thd, harm, strict=True):
         if r is None and h is None:

@@ -247,6 +247,14 @@ def aggregate_body(agg: Aggregate, channels: Iterable[str]) -> dict[str, Any]:
     )
     if agg.harmonics:
         body["harmonics"] = harmonics_field(agg.harmonics)
+    if agg.pst:
+        fl: dict[str, Any] = {"pst": [_opt_float(x, "pst") for x in agg.pst],
+                              "flagged": bool(agg.flicker_flagged)}
+        if agg.plt is not None:
+            fl["plt"] = [_opt_float(x, "plt") for x in agg.plt]
+        if agg.lamp:
+            fl["lamp"] = agg.lamp
+        body["flicker"] = fl
     return body
 
 
@@ -278,7 +286,19 @@ def aggregate_from_message(msg: Mapping[str, Any]) -> Aggregate:
         rms=tuple(f(x) for x in msg["rms"]), thd=tuple(f(x) for x in msg["thd"]),
         hz=None if msg["hz"] is None else float(msg["hz"]), flagged=bool(msg["flagged"]),
         count=int(msg["count"]), harmonics=harmonics_from_field(msg.get("harmonics")),
+        **_flicker_from_field(msg.get("flicker")),
     )
+
+
+def _flicker_from_field(field: Mapping[str, Any] | None) -> dict[str, Any]:
+    if not field:
+        return {}
+    def f(x: Any) -> float:
+        return math.nan if x is None else float(x)
+    plt = field.get("plt")
+    return {"pst": tuple(f(x) for x in field["pst"]),
+            "plt": None if plt is None else tuple(f(x) for x in plt),
+            "flicker_flagged": bool(field["flagged"]), "lamp": str(field.get("lamp", ""))}
 
 
 # --- event ------------------------------------------------------------------------------
