@@ -10,6 +10,7 @@ import numpy as np
 
 from agent.events.types import Event
 from agent.pipeline import Frame
+from agent.report.power_quality import analysis_sections
 
 
 def infer_frequency(volts: np.ndarray, rate: float) -> float:
@@ -76,6 +77,7 @@ class AnalysisCollector:
     aggregates: list[dict[str, Any]] = field(default_factory=list)
     captures: int = 0
     rate: float = 1.0
+    ten_min: list[Any] = field(default_factory=list)   # 10-min Aggregates (flicker section)
 
     def __call__(self, frame: Frame) -> Frame:
         m = frame.measurement
@@ -90,6 +92,7 @@ class AnalysisCollector:
                         "flagged": bool(iv.flagged[k]),
                     }
                 )
+            self.ten_min.extend(a for a in m.aggregates if a.kind == "10min")
             for agg in m.aggregates:
                 if agg.hz is not None:
                     self.frequency.append({"t": round(agg.t_utc, 3), "hz": round(agg.hz, 5)})
@@ -144,6 +147,7 @@ class AnalysisCollector:
             "events": [event_record(e) for e in events],
             "captures": self.captures,
             "flags": self.flags,
+            **analysis_sections(self.ten_min),
         }
 
 
