@@ -176,11 +176,9 @@ class MeasurementEngine:
         self._g3: list[tuple[float, float, F64, F64, bool]] = []
         self._g3_period: int | None = None
         self._g10: list[tuple[F64, F64, bool]] = []
-        # Individual harmonics h2..H over the open 10-min period: sums of squared ratios and
-        # counts of finite values, per channel and order.
-        nh = max(self._order - 1, 0)
-        self._g10_h2 = np.zeros((c, nh))
-        self._g10_hn = np.zeros((c, nh), np.int64)
+        # Individual harmonics h2..H per 10-min period: sums of squared ratios and counts of
+        # finite values, (channels, orders) each.
+        self._h_sums: dict[int, tuple[F64, int]] = {}
         self._g10_period: int | None = None
         self._f_period: int | None = None
         self._f_utc: list[float] = []
@@ -390,12 +388,17 @@ class MeasurementEngine:
             self._horizon[c] = s0 + keep - d
 
     def _advance(self, out: _Out, final: bool) -> None:
+        prev_last = self._chain.last
         new_t, new_syn = extend_chain(self._cand, self._horizon, self._chain, self._hp,
                                       3.0 * self._hp)
+        self._ref_new: tuple[F64, I64, F64] | None = None
+        self._ref_prev = prev_last
+        self._ref_real = bool(new_t.shape[0]) and not bool(new_syn.any())
         if new_t.shape[0]:
             utc = np.fromiter(map(self.timebase.to_utc, new_t.tolist()), np.float64,
                               new_t.shape[0])
             whole, rest = self._crossing_integrals(new_t)
+            self._ref_new = (new_t, whole, rest)
             self._cx_t = np.concatenate([self._cx_t, new_t])
             self._cx_syn = np.concatenate([self._cx_syn, new_syn])
             self._cx_utc = np.concatenate([self._cx_utc, utc])
@@ -418,30 +421,54 @@ class MeasurementEngine:
     def _extend_own_chains(self) -> None:
         """Extend every channel's own crossing chain from its own candidates only."""
         news: list[F64] = []
+        ref = self._ref_new
         for c in range(self.channels):
             st = self._own_chain[c]
-            new_t, _ = extend_chain([self._own_cand[c]], [self._horizon[c]], st, self._hp,
+            cand = self._own_cand[c]
+            if (ref is not None and self._ref_real and st.last is not None
+                    and st.last == self._ref_prev):
+                # In step with the shared chain, whose new crossings are all real: if they
+                # are this channel's next candidates, its own chain takes them as they are
+                # (the same choice extend_chain would make: channel 0, usually).
+                k = ref[0].shape[0]
+                i = int(cand.searchsorted(st.last + MIN_SPACING * self._hp))
+                if i + k <= cand.shape[0] and (cand[i:i + k] == ref[0]).all():
+                    st.last = float(ref[0][-1])
+                    news.append(ref[0])
+                    self._own_cand[c] = cand[i + k:]
+                    continue
+            new_t, _ = extend_chain([cand], [self._horizon[c]], st, self._hp,
                                     3.0 * self._hp)
             news.append(new_t)
             if new_t.shape[0]:
                 cand = self._own_cand[c]
                 floor = float(st.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
                 self._own_cand[c] = cand[np.searchsorted(cand, floor):]
-        counts = [t.shape[0] for t in news]
-        if not any(counts):
-            return
-        # One pass for every channel's new crossings (each reads its own column).
-        chan = np.repeat(np.arange(self.channels), counts)
-        whole, rest = self._crossing_integrals(np.concatenate(news), chan)
-        cuts = np.cumsum(counts)[:-1]
-        for c, (t, w, r) in enumerate(zip(news, np.split(whole, cuts, axis=1),
-                                          np.split(rest, cuts, axis=1), strict=True)):
-            if t.shape[0]:
-                self._oc_t[c] = np.concatenate([self._oc_t[c], t])
-                self._oc_p[c] = np.concatenate([self._oc_p[c], w], axis=1)
-                self._oc_r[c] = np.concatenate([self._oc_r[c], r], axis=1)
+        # A channel whose new crossings are the shared chain's (channel 0, usually) takes
+        # their integrals as they are; the others get one pass (each reads its own column).
+        shared = [ref is not None and t.shape == ref[0].shape and bool((t == ref[0]).all())
+                  for t in news]
+        counts = [0 if sh else t.shape[0] for t, sh in zip(news, shared, strict=True)]
+        if any(counts):
+            chan = np.repeat(np.arange(self.channels), counts)
+            whole, rest = self._crossing_integrals(np.concatenate(
+                [t for t, n in zip(news, counts, strict=True) if n]), chan)
+            cuts = np.cumsum(counts)[:-1]
+            parts = list(zip(np.split(whole, cuts, axis=1), np.split(rest, cuts, axis=1),
+                             strict=True))
+        for c, t in enumerate(news):
+            if not t.shape[0]:
+                continue
+            if shared[c]:
+                assert ref is not None
+                w, r = ref[1][:, :, c], ref[2][:, :, c]
+            else:
+                w, r = parts[c]
+            self._oc_t[c] = np.concatenate([self._oc_t[c], t])
+            self._oc_p[c] = np.concatenate([self._oc_p[c], w], axis=1)
+            self._oc_r[c] = np.concatenate([self._oc_r[c], r], axis=1)
 
-    def _own_windows(self, ends: F64, urms: F64, dc: F64 | None) -> None:
+    def _own_windows(self, starts: F64, ends: F64, urms: F64, dc: F64 | None) -> None:
         """Replace urms[:, c] by channel c's own Urms(1/2): the one-cycle window on c's own
         crossings that ended last at or before each row's end (in place). Rows before c's
         chain holds a whole window keep the shared-chain value. Crossings no later row can
@@ -451,6 +478,8 @@ class MeasurementEngine:
             idx = np.searchsorted(t, ends, side="right") - 1
             j = idx - 2
             ok = j >= 0
+            if ok.all() and (t[idx] == ends).all() and (t[j] == starts).all():
+                ok[:] = False                   # the shared windows already: same values
             if ok.any():
                 hi, lo = idx[ok], j[ok]
                 pc, rc = self._oc_p[c], self._oc_r[c]
@@ -540,7 +569,7 @@ class MeasurementEngine:
         else:
             dc = None
             urms = np.sqrt(np.maximum(msq, 0.0))
-        self._own_windows(b, urms, dc)
+        self._own_windows(a, b, urms, dc)
         syn = self._cx_syn
         synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
         synthetic |= syn[lo + 2:hi + 2]
@@ -650,7 +679,7 @@ class MeasurementEngine:
         rms = rms_without_dc(msq, mean, self._cx_dc[i0s])
         thd = np.full(rms.shape, np.nan)
         imb = np.full(cyc.shape[0], np.nan)
-        hr2 = np.zeros((cyc.shape[0], self.channels, max(self._order - 1, 0)))
+        ysg2 = np.zeros((self.channels, cyc.shape[0], self._order if self._order >= 2 else 0))
         # Spectra in batches so a huge block (a whole file at once) keeps memory bounded.
         for b0 in range(0, cyc.shape[0], SPECTRA_BATCH):
             sl = slice(b0, b0 + SPECTRA_BATCH)
@@ -659,12 +688,21 @@ class MeasurementEngine:
                                          max(self._order, 1), self._points, self._frac)
             if self._order >= 2:                # else the sample rate allows no harmonic
                 thd[sl] = thd_from_subgroups(ysg).T
-                hr2[sl] = np.square(harmonic_ratios(ysg)).transpose(1, 0, 2)
+                np.square(ysg, out=ysg2[:, sl])
             if self._imbalance == "u2":         # fundamental phasors, (m, 3)
                 imb[sl] = negative_sequence_ratio(fund.T)
         # Individual harmonics need the 5 Hz bins of a whole basic interval (IEC 61000-4-7):
-        # the short interval before a 10-min tick or at the end of data is left out.
-        hr2[cyc != self._cycles] = np.nan
+        # the short interval before a 10-min tick or at the end of data is left out. Sums of
+        # squared subgroups (orders 1..H) per 10-min period, the block's intervals at once.
+        if ysg2.shape[-1]:
+            full = cyc == self._cycles
+            p10_arr = self._cx_p10[i0s]
+            for per in (np.unique(p10_arr).tolist() if p10_arr[0] != p10_arr[-1]
+                        else [int(p10_arr[0])]):
+                rows = full & (p10_arr == per)
+                if rows.any():
+                    sq, n = self._h_sums.get(per, (0.0, 0))
+                    self._h_sums[per] = (ysg2[:, rows].sum(axis=1) + sq, int(rows.sum()) + n)
         if self._imbalance == "split":
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)
@@ -678,7 +716,7 @@ class MeasurementEngine:
         flag_list = flagged.tolist()
         for k in range(cyc.shape[0]):
             self._aggregate_interval(out, utc0[k], utc1[k], p10[k], rms[k], thd[k],
-                                     flag_list[k], hr2[k])
+                                     flag_list[k])
 
     def _trim(self) -> None:
         base = self._cx_base
@@ -723,7 +761,7 @@ class MeasurementEngine:
 
     # ------------------------------------------------------------------ aggregation
     def _aggregate_interval(self, out: _Out, t0: float, t1: float, p10: int, rms: F64,
-                            thd: F64, flagged: bool, hr2: F64 | None = None) -> None:
+                            thd: F64, flagged: bool) -> None:
         if self._g3 and self._g3_period != p10:
             self._emit_3s(out)                     # resynchronised at the 10-min tick
         if self._g10 and self._g10_period != p10:
@@ -731,10 +769,6 @@ class MeasurementEngine:
         self._g3_period = self._g10_period = p10
         self._g3.append((t0, t1, rms, thd, flagged))
         self._g10.append((rms, thd, flagged))
-        if hr2 is not None and hr2.shape[-1]:
-            ok = np.isfinite(hr2)
-            self._g10_h2 += np.where(ok, hr2, 0.0)
-            self._g10_hn += ok
         if len(self._g3) == INTERVALS_PER_3S:
             self._emit_3s(out)
 
@@ -761,14 +795,20 @@ class MeasurementEngine:
         self._g10 = []
 
     def _harmonics_10min(self) -> tuple[tuple[float, ...], ...]:
-        """RMS of each channel's h2..H ratios over the period; resets the sums."""
-        if not self._g10_h2.shape[-1]:
+        """Each channel's h2..H over the period being emitted: the RMS of each order's
+        subgroup over the period's whole basic intervals (IEC 61000-4-30 cl. 4.5
+        aggregation) relative to the fundamental's; NaN where there is none."""
+        if self._order < 2 or self._g10_period is None:
             return ()
-        n = self._g10_hn
-        h = np.sqrt(np.divide(self._g10_h2, n, out=np.full(n.shape, np.nan), where=n > 0))
-        self._g10_h2 = np.zeros_like(self._g10_h2)
-        self._g10_hn = np.zeros_like(self._g10_hn)
-        return tuple(tuple(float(v) for v in row) for row in h)
+        period = self._g10_period
+        got = self._h_sums.pop(period, None)
+        for k in [k for k in self._h_sums if k < period]:
+            del self._h_sums[k]
+        if got is None:
+            return tuple(tuple([math.nan] * (self._order - 1)) for _ in range(self.channels))
+        sq, _n = got                       # (channels, H); the count cancels in the ratio
+        ratio = harmonic_ratios(np.sqrt(sq))
+        return tuple(tuple(float(v) for v in row) for row in ratio)
 
     def _feed_freq(self, out: _Out, utc: F64, syn: BOOL, flagged: BOOL) -> None:
         if utc.shape[0] == 0:

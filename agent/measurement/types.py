@@ -77,8 +77,9 @@ class Aggregate:
     count: int = 0
     harmonics: tuple[tuple[float, ...], ...] = ()
     """10-min only: per channel, harmonic subgroups h2..h40 (as far as the sample rate
-    allows) as fractions of the fundamental, RMS over the period's 10/12-cycle values
-    (IEC 61000-4-7 subgroups, IEC 61000-4-30 cl. 4.5 aggregation); NaN where none."""
+    allows), each the RMS of its 10/12-cycle values over the period divided by the
+    fundamental's (IEC 61000-4-7 subgroups, IEC 61000-4-30 cl. 4.5 aggregation); NaN where
+    none."""
     pst: tuple[float, ...] = ()
     """10-min only: short-term flicker severity per channel (IEC 61000-4-15); NaN where none."""
     plt: tuple[float, ...] | None = None
