@@ -40,7 +40,7 @@ import numpy.typing as npt
 F64 = npt.NDArray[np.float64]
 
 DECIMATED_RATE = 480.0          # [S/s] target rate after the D-sample mean
-CHUNK = 240                     # decimated samples per state-space block (0.5 s at 480 S/s)
+CHUNK = 480                     # decimated samples per state-space block (1 s at 480 S/s)
 PINST_STEP = 8                  # keep every 8th Pinst value for the classifier (60 S/s)
 ADAPTOR_TAU_S = 60.0            # input adaptor smoothing [s] (from memory: 1 min)
 SMOOTHING_TAU_S = 0.3           # block 4 first-order smoothing [s] (published)
@@ -425,9 +425,11 @@ class FlickerMeter:
         y *= y
         p, self._s_smooth = self._smooth.run(y, self._s_smooth)  # every PINST_STEP-th value
         pk = p.T * PINST_GAIN
-        pk[:, ~self._live] = np.nan
-        settling = bool((self._settle_left > 0).any())
-        self._settle_left = np.maximum(0, self._settle_left - w.shape[1])
+        if not self._live.all():
+            pk[:, ~self._live] = np.nan
+        settling = bool(self._settle_left.any())
+        if settling:
+            self._settle_left = np.maximum(0, self._settle_left - w.shape[1])
         return self._store(pk, first, utc_of, settling)
 
     def _store(self, p: F64, first: int, utc_of: Callable[[float], float], settling: bool
