@@ -71,3 +71,26 @@ def test_analyze_json_gains_flicker(capsys: pytest.CaptureFixture[str], tmp_path
     entry = res["flicker"][0]
     assert entry["t"] == 0.0 and entry["flagged"] is True
     assert entry["pst"][0] == pytest.approx(1.0, abs=0.05)
+
+
+def test_fleet_report_device_sections_carry_harmonics_and_flicker(tmp_path: Path) -> None:
+    # A real SQLite recorder store with a day of invented v2 10-min aggregates.
+    from agent.report.fleet import fleet_report
+    from agent.store.recorder import RecorderStore
+
+    store = RecorderStore(f"sqlite:///{tmp_path / 'r.db'}", tmp_path / "captures")
+    try:
+        msgs = []
+        for k in range(24):
+            body = aggregate_body(_agg(1_700_000_400.0 + 600.0 * k, 0.4,
+                                       0.45 if k % 12 == 11 else None), ["L1"])
+            msgs.append(body | {"device": "home-1", "site": "street", "epoch": "e1",
+                                "seq": k + 1})
+        store.commit_batch(msgs)
+        rep = fleet_report(store, now=1_700_020_000.0)
+    finally:
+        store.close()
+    (dev,) = [d for d in rep["devices"] if d.get("device") == "home-1"]
+    assert dev["harmonics"]["channels"]["L1"][0]["rule"] == "en50160_harmonics"
+    assert dev["flicker"]["channels"]["L1"]["basis"]["plt_values"] == 2
+    json.dumps(rep)                                    # JSON-ready
