@@ -111,7 +111,7 @@ def test_ten_minute_harmonics_are_stored_compact_and_exported() -> None:
     assert "h3" not in pts["L2"]
     assert pts["L1"]["pst"] == pytest.approx(0.42) and pts["L2"]["plt"] == pytest.approx(0.38)
     assert pts["L1"]["flicker_flagged"] == 0
-    assert back.pst == (0.42, 0.39) and back.plt == (0.40, 0.38) and back.lamp == "120V"
+    assert back.pst == (0.42, 0.39) and back.plt == (0.40, 0.38) and back.lamp == ""
 
 
 def test_ten_minute_harmonics_reach_the_store(store: RecorderStore) -> None:  # noqa: F811
