@@ -119,8 +119,17 @@ class RvcDetector:
         u = np.concatenate([self._tail, np.asarray(half.urms, np.float64)], axis=0)
         starts = np.concatenate([self._tail_start, np.asarray(half.start, np.float64)])
         t0 = self._tail.shape[0]                # first new row in u
-        bad = np.asarray(((u < self._dip_v) | (u > self._swell_v)).any(axis=1))
         m = u.shape[0]
+        if self._state == "steady" and t0 >= n:
+            # Every mean of the last n values lies between the rows' extremes: when they
+            # span no more than the threshold inside the dip/swell band, nothing can trigger.
+            lo, hi = u.min(axis=0), u.max(axis=0)
+            if ((hi - lo).max() <= self._thr_v and lo.min() >= self._dip_v
+                    and hi.max() <= self._swell_v):
+                self._tail = u[m - n:].copy()
+                self._tail_start = starts[m - n:].copy()
+                return []
+        bad = np.asarray(((u < self._dip_v) | (u > self._swell_v)).any(axis=1))
         # Window r is u[r:r+n]: its mean (cheap, always) and whether it is steady and free of
         # dip/swell values (computed only when a state needs it).
         if m >= n:
