@@ -6,7 +6,8 @@ returns it, adding its own results. The standalone recorder (``halfcycle analyze
 edge agent (``halfcycle edge run``) and the benchmarks all build their chain with
 :func:`edge_stages`, then append their own sink stage.
 
-    source ─ block ─▶ measure ─▶ detect ─▶ classify ─▶ journal ─▶ capture ─▶ sinks ─▶ forget closed
+    source ─ block ─▶ measure ─▶ detect ─▶ detect RVC ─▶ classify ─▶ journal ─▶ capture ─▶ sinks
+           ─▶ forget closed
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ from agent.events.capture import CaptureRecorder
 from agent.events.classify import classify_event
 from agent.events.detector import EventDetector
 from agent.events.persist import OpenEventJournal
+from agent.events.rvc import RvcDetector, RvcSettings
 from agent.events.types import Capture, EventUpdate, Thresholds
 from agent.measurement.engine import MeasurementEngine
 from agent.measurement.types import MeasurementOutput
@@ -87,6 +89,23 @@ class Detect:
         return frame
 
 
+class DetectRvc:
+    """Urms(1/2) → rapid voltage changes, reported whole once their new steady state is seen
+    (a started and an ended update in the same frame; no journal entry, no capture)."""
+
+    def __init__(self, detector: RvcDetector) -> None:
+        self.detector = detector
+
+    def __call__(self, frame: Frame) -> Frame:
+        assert frame.measurement is not None
+        half = frame.measurement.half_cycles
+        if len(half):
+            frame.updates.extend(self.detector.update(half))
+        if frame.final:
+            frame.updates.extend(self.detector.finish())
+        return frame
+
+
 class Classify:
     """Tag each ended event with its IEEE 1159 / ITIC / SEMI F47 / EN 50160 / IEEE 1564 class."""
 
@@ -109,7 +128,7 @@ class Journal:
 
     def __call__(self, frame: Frame) -> Frame:
         for update in frame.updates:
-            if update.change == "started":
+            if update.change == "started" and update.event.kind != "rvc":
                 self.journal.opened(update.event)
         if frame.block is not None and frame.measurement is not None:
             half = frame.measurement.half_cycles
@@ -131,7 +150,7 @@ class ForgetClosed:
 
     def __call__(self, frame: Frame) -> Frame:
         for update in frame.updates:
-            if update.change == "ended":
+            if update.change == "ended" and update.event.kind != "rvc":
                 self.journal.closed(update.event)
         return frame
 
@@ -148,6 +167,8 @@ class TakeCaptures:
             frame.captures.extend(self.recorder.feed(frame.block))
         for update in frame.updates:
             ev = update.event
+            if ev.kind == "rvc":          # known a second late: the ring has moved on
+                continue
             # The update's own index/utc: the event object may change later (a dip that
             # becomes an interruption moves its start).
             if update.change == "started":
@@ -172,6 +193,7 @@ class EdgeParts:
     detector: EventDetector
     recorder: CaptureRecorder
     journal: OpenEventJournal | None
+    rvc: RvcDetector | None = None
 
 
 def edge_stages(
@@ -183,11 +205,13 @@ def edge_stages(
     gains: np.ndarray | None = None,
     capture: CaptureSettings | None = None,
     journal_path: str | Path | None = None,
+    rvc: RvcSettings | None = None,
     sinks: Sequence[Stage] = (),
 ) -> tuple[list[Stage], EdgeParts]:
-    """Build the edge chain: measure → detect → classify → journal → capture → sinks →
-    forget closed events."""
+    """Build the edge chain: measure → detect → detect RVC → classify → journal → capture →
+    sinks → forget closed events. ``rvc`` defaults to :class:`RvcSettings` (on)."""
     thresholds = thresholds or Thresholds()
+    rvc = rvc or RvcSettings()
     capture = capture or CaptureSettings()
     engine = MeasurementEngine(info, site, thresholds, timebase, gains)
     detector = EventDetector(
@@ -203,14 +227,19 @@ def edge_stages(
     journal = (
         OpenEventJournal(journal_path, timebase=timebase) if journal_path is not None else None
     )
-    stages: list[Stage] = [Measure(engine), Detect(detector), Classify(site.nominal_hz)]
+    rvc_detector = (RvcDetector(site.nominal_v, site.nominal_hz, info.channels, thresholds, rvc,
+                                timebase) if rvc.enabled else None)
+    stages: list[Stage] = [Measure(engine), Detect(detector)]
+    if rvc_detector is not None:
+        stages.append(DetectRvc(rvc_detector))
+    stages.append(Classify(site.nominal_hz))
     if journal is not None:
         stages.append(Journal(journal, timebase))
     stages.append(TakeCaptures(recorder, timebase))
     stages.extend(sinks)
     if journal is not None:
         stages.append(ForgetClosed(journal))
-    return stages, EdgeParts(engine, detector, recorder, journal)
+    return stages, EdgeParts(engine, detector, recorder, journal, rvc_detector)
 
 
 def push(stages: Sequence[Stage], frame: Frame) -> Frame:

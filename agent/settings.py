@@ -4,6 +4,8 @@
 [site]          # agent.site.Site: site, device, nominal_v, nominal_hz, service_type, channels, ...
 [source]        # agent.acquisition.open_source: kind = "sim" | "wav" | "csv" | "serial", ...
 [events]        # thresholds as fractions of nominal: dip, swell, interruption, hysteresis
+[rvc]           # rapid voltage changes: threshold = 0.03, hysteresis = 0.015 (of nominal),
+                # enabled = true (agent.events.rvc; defaults from memory, IEC 61000-4-30 Ed.3)
 [capture]       # pre_cycles, post_cycles
 [calibration]   # file = "calibration.toml" (written by `halfcycle calibrate`)
 [state]         # dir = "/var/lib/halfcycle" (outbox, open-event journal)
@@ -24,11 +26,13 @@ from typing import Any
 import numpy as np
 
 from agent.config import ConfigError, Section, load_toml
+from agent.events.rvc import RvcSettings
 from agent.events.types import Thresholds
 from agent.pipeline import CaptureSettings
 from agent.site import Site, check_identifier
 
-SECTIONS = {"site", "source", "events", "capture", "calibration", "state", "summary", "mqtt"}
+SECTIONS = {"site", "source", "events", "rvc", "capture", "calibration", "state", "summary",
+            "mqtt"}
 
 
 @dataclass
@@ -43,6 +47,7 @@ class EdgeSettings:
     summary_seconds: int
     mqtt: Section
     raw: dict[str, Any] = field(default_factory=dict)
+    rvc: RvcSettings = field(default_factory=RvcSettings)
 
     def resolve(self, value: str) -> Path:
         p = Path(value)
@@ -76,6 +81,17 @@ def parse_thresholds(sec: Section) -> Thresholds:
     if not 0.0 <= t.hysteresis < min(t.dip - t.interruption, t.swell - 1.0):
         raise sec.error("hysteresis", f"{t.hysteresis} does not fit between the thresholds")
     return t
+
+
+def parse_rvc(sec: Section) -> RvcSettings:
+    sec.reject_unknown({"threshold", "hysteresis", "enabled"})
+    threshold = sec.get("threshold", float, RvcSettings.threshold)
+    hysteresis = sec.get("hysteresis", float, RvcSettings.hysteresis)
+    if not 0.0 < threshold < 0.1:
+        raise sec.error("threshold", f"must be between 0 and 0.1 of nominal, got {threshold}")
+    if not 0.0 <= hysteresis < threshold:
+        raise sec.error("hysteresis", f"must be >= 0 and below the threshold, got {hysteresis}")
+    return RvcSettings(threshold, hysteresis, sec.get("enabled", bool, True))
 
 
 def load_edge_settings(path: str | Path) -> EdgeSettings:
@@ -114,6 +130,7 @@ def load_edge_settings(path: str | Path) -> EdgeSettings:
         summary_seconds=seconds,
         mqtt=top.section("mqtt"),
         raw=doc,
+        rvc=parse_rvc(top.section("rvc")),
     )
     settings.calibration_file = settings.resolve(cal_file) if cal_file else None
     settings.state_dir = settings.resolve(state.get("dir", str, "state"))

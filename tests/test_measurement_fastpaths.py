@@ -171,6 +171,8 @@ def test_engine_results_unchanged_when_running_sums_wrap_around() -> None:
             with np.errstate(over="ignore"):
                 shifted._p += offset
                 shifted._cx_p += offset
+                for own in shifted._oc_p:      # each channel's own crossing chain
+                    own += offset
             shifted._casc._sums_tail = None if shifted._casc._sums_tail is None else (
                 shifted._casc._sums_tail + offset)
         for name, eng in (("plain", plain), ("shifted", shifted)):

@@ -221,6 +221,16 @@ def test_validator_loads_a_new_version_from_the_folder(tmp_path: Path) -> None:
     assert err.value.code == "unknown_version" and "v=2" in err.value.reason
 
 
+def test_event_v1_and_v2_are_both_read_and_v2_is_written() -> None:
+    # A v1 dip from a device not yet upgraded stays valid; an RVC needs v2's kind.
+    v1 = sample_messages()["event"] | {"v": 1}
+    assert default_validator().validate(v1) == "event" and js_valid(v1, "event")
+    assert default_validator().versions["event"] == 2
+    with pytest.raises(WireError) as err:
+        default_validator().validate(v1 | {"v": 3})
+    assert err.value.code == "unknown_version" and "v=1, 2" in err.value.reason
+
+
 def test_times_are_documented_as_utc_seconds() -> None:
     desc = _schema("summary")["$defs"]["utc"]["description"]
     assert "UTC seconds" in desc and "float64" in desc

@@ -2,22 +2,29 @@
 
 Calibrated volts = counts × ``SourceInfo.volts_per_count`` × gain. A gain is found by
 applying a steady voltage, reading it with a reference meter (``reference_volts``) and with
-the monitor using gain 1 (``measured_volts``): gain = reference / measured.
+the monitor using gain 1 (``measured_volts``): gain = reference / measured. Each channel (each
+leg of a split-phase service, each phase) has its own reading and its own uncertainty: the
+legs of one service differ by more than a meter's uncertainty, so one reading applied to all
+would "correct" real differences away (:func:`check_shared_reading` refuses that).
 
-File format (ours; TOML when the name ends in ``.toml``, JSON when ``.json``)::
+Safety: the reference reading is taken by a licensed electrician with a meter rated for the
+circuit, or at a socket with a plug-in meter. Never probe a live circuit yourself.
 
-    format = 1
+File format 2 (ours; TOML when the name ends in ``.toml``, JSON when ``.json``)::
+
+    format = 2
     device = "device-0"
     date_utc = "2026-12-01T18:00:00Z"      # ISO 8601, UTC
-    reference_volts = 120.0                 # [V RMS] the meter's reading
-    reference_uncertainty_v = 0.06          # [V] the meter's stated uncertainty
     note = "bench check, invented example"
 
     [channels.L1]
     gain = 1.00125
     measured_volts = 119.85                 # [V RMS] the monitor's reading at gain 1
+    reference_volts = 120.0                 # [V RMS] the meter's reading for this channel
+    reference_uncertainty_v = 0.06          # [V] that reading's stated uncertainty
 
-The JSON form has the same keys, with ``channels`` an object of objects.
+The JSON form has the same keys, with ``channels`` an object of objects. Format 1 files (one
+top-level ``reference_volts`` / ``reference_uncertainty_v`` for every channel) still load.
 """
 
 from __future__ import annotations
@@ -35,36 +42,41 @@ import numpy.typing as npt
 
 from agent.config import ConfigError, Section, load_toml
 
-__all__ = ["FORMAT_VERSION", "GAIN_LIMITS", "CalibrationRecord", "compute_gains"]
+__all__ = ["FORMAT_VERSION", "GAIN_LIMITS", "CalibrationRecord", "check_shared_reading",
+           "compute_gains"]
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READ_FORMATS = (1, 2)
 # A gain outside this range means a wiring or scale mistake, not a calibration.
 GAIN_LIMITS = (0.5, 2.0)
 
 
 def compute_gains(
-    measured_rms_per_channel: Mapping[str, float], reference_volts: float
+    measured_rms_per_channel: Mapping[str, float], reference_volts: float | Mapping[str, float]
 ) -> dict[str, float]:
     """Gain per channel so that measured × gain = reference.
 
     Parameters
     ----------
     measured_rms_per_channel : mapping of channel name to RMS read at gain 1  [V]
-    reference_volts : RMS read by the reference meter  [V]
+    reference_volts : RMS read by the reference meter  [V], one per channel (a mapping) or
+        one for all (see :func:`check_shared_reading` before sharing one reading)
 
     Returns
     -------
     gains : mapping of channel name to gain  [1]
     """
-    if not (math.isfinite(reference_volts) and reference_volts > 0):
-        raise ValueError(f"reference_volts must be positive, got {reference_volts}")
     if not measured_rms_per_channel:
         raise ValueError("no channels measured")
+    refs = _per_channel(reference_volts, measured_rms_per_channel)
     gains: dict[str, float] = {}
     for name, measured in measured_rms_per_channel.items():
+        ref = refs[name]
+        if not (math.isfinite(ref) and ref > 0):
+            raise ValueError(f"channel {name}: reference_volts must be positive, got {ref}")
         if not (math.isfinite(measured) and measured > 0):
             raise ValueError(f"channel {name}: measured RMS must be positive, got {measured}")
-        gain = reference_volts / measured
+        gain = ref / measured
         if not GAIN_LIMITS[0] <= gain <= GAIN_LIMITS[1]:
             raise ValueError(
                 f"channel {name}: gain {gain:.4f} is outside {GAIN_LIMITS}; "
@@ -72,6 +84,37 @@ def compute_gains(
             )
         gains[name] = gain
     return gains
+
+
+def _per_channel(value: float | Mapping[str, float], names: Mapping[str, float]
+                 ) -> dict[str, float]:
+    if isinstance(value, Mapping):
+        missing = [n for n in names if n not in value]
+        if missing:
+            raise ValueError(f"no reference reading for channel {', '.join(missing)}")
+        return {n: float(value[n]) for n in names}
+    return {n: float(value) for n in names}
+
+
+def check_shared_reading(measured_rms_per_channel: Mapping[str, float],
+                         uncertainty_v: float) -> None:
+    """Refuse to apply one reference reading to channels that read differently.
+
+    One reading stands for several channels only if the monitor sees them within the
+    reading's stated uncertainty of each other [V]; otherwise the difference may be real
+    (the legs of a split-phase service differ under load) and a shared reading would hide it.
+    Raises ValueError naming the channels and the spread.
+    """
+    if len(measured_rms_per_channel) < 2:
+        return
+    hi = max(measured_rms_per_channel, key=lambda n: measured_rms_per_channel[n])
+    lo = min(measured_rms_per_channel, key=lambda n: measured_rms_per_channel[n])
+    spread = measured_rms_per_channel[hi] - measured_rms_per_channel[lo]
+    if spread > uncertainty_v:
+        raise ValueError(
+            f"channels {lo} and {hi} read {spread:.3f} V apart, more than the reading's "
+            f"uncertainty {uncertainty_v:.3f} V: take one reference reading per channel "
+            f"(--reference-volts NAME=V for each)")
 
 
 def _utc_now() -> str:
@@ -82,8 +125,10 @@ def _utc_now() -> str:
 class CalibrationRecord:
     device: str
     channel_gains: dict[str, float]
-    reference_volts: float
-    reference_uncertainty_v: float
+    reference_volts: dict[str, float]
+    """The reference reading per channel [V RMS]."""
+    reference_uncertainty_v: dict[str, float]
+    """Each reading's stated uncertainty [V]."""
     measured_volts: dict[str, float] = field(default_factory=dict)
     date_utc: str = field(default_factory=_utc_now)
     note: str = ""
@@ -101,13 +146,13 @@ class CalibrationRecord:
             entry = {"gain": gain}
             if name in self.measured_volts:
                 entry["measured_volts"] = self.measured_volts[name]
+            entry["reference_volts"] = self.reference_volts[name]
+            entry["reference_uncertainty_v"] = self.reference_uncertainty_v[name]
             channels[name] = entry
         return {
             "format": FORMAT_VERSION,
             "device": self.device,
             "date_utc": self.date_utc,
-            "reference_volts": self.reference_volts,
-            "reference_uncertainty_v": self.reference_uncertainty_v,
             "note": self.note,
             "channels": channels,
         }
@@ -130,8 +175,6 @@ class CalibrationRecord:
             f"format = {FORMAT_VERSION}",
             f"device = {s(d['device'])}",
             f"date_utc = {s(d['date_utc'])}",
-            f"reference_volts = {float(d['reference_volts'])!r}",
-            f"reference_uncertainty_v = {float(d['reference_uncertainty_v'])!r}",
             f"note = {s(d['note'])}",
         ]
         for name, entry in d["channels"].items():
@@ -160,13 +203,14 @@ class CalibrationRecord:
 
 def _validate(doc: Mapping[str, Any], path: Path | None) -> CalibrationRecord:
     sec = Section(doc, path)
-    sec.reject_unknown(
-        {"format", "device", "date_utc", "reference_volts", "reference_uncertainty_v", "note",
-         "channels"}
-    )
     fmt = sec.get("format", int, required=True)
-    if fmt != FORMAT_VERSION:
-        raise sec.error("format", f"unsupported format {fmt} (this version reads {FORMAT_VERSION})")
+    if fmt not in READ_FORMATS:
+        raise sec.error("format", f"unsupported format {fmt} (this version reads "
+                                  f"{', '.join(map(str, READ_FORMATS))})")
+    top = {"format", "device", "date_utc", "note", "channels"}
+    if fmt == 1:
+        top |= {"reference_volts", "reference_uncertainty_v"}
+    sec.reject_unknown(top)
     date = sec.get("date_utc", str, required=True)
     try:
         parsed = datetime.fromisoformat(date)
@@ -174,20 +218,22 @@ def _validate(doc: Mapping[str, Any], path: Path | None) -> CalibrationRecord:
         raise sec.error("date_utc", f"{date!r} is not an ISO 8601 time") from None
     if parsed.utcoffset() != UTC.utcoffset(None):
         raise sec.error("date_utc", f"{date!r} must be UTC (end in Z or +00:00)")
-    ref = sec.get("reference_volts", float, required=True)
-    if not (math.isfinite(ref) and ref > 0):
-        raise sec.error("reference_volts", f"must be positive, got {ref}")
-    unc = sec.get("reference_uncertainty_v", float, required=True)
-    if not (math.isfinite(unc) and unc >= 0):
-        raise sec.error("reference_uncertainty_v", f"must be >= 0, got {unc}")
+    shared: tuple[float, float] | None = None
+    if fmt == 1:
+        shared = (_reference(sec), _uncertainty(sec))
     chans = sec.section("channels", required=True)
     if not chans.data:
         raise sec.error("channels", "no channels")
     gains: dict[str, float] = {}
     measured: dict[str, float] = {}
+    refs: dict[str, float] = {}
+    uncs: dict[str, float] = {}
     for name in chans.data:
         ch = chans.section(name)
-        ch.reject_unknown({"gain", "measured_volts"})
+        keys = {"gain", "measured_volts"}
+        if fmt == 2:
+            keys |= {"reference_volts", "reference_uncertainty_v"}
+        ch.reject_unknown(keys)
         gain = ch.get("gain", float, required=True)
         if not (math.isfinite(gain) and GAIN_LIMITS[0] <= gain <= GAIN_LIMITS[1]):
             raise ch.error("gain", f"{gain} is outside {GAIN_LIMITS}")
@@ -197,12 +243,27 @@ def _validate(doc: Mapping[str, Any], path: Path | None) -> CalibrationRecord:
             if not (math.isfinite(m) and m > 0):
                 raise ch.error("measured_volts", f"must be positive, got {m}")
             measured[str(name)] = m
+        refs[str(name)], uncs[str(name)] = shared or (_reference(ch), _uncertainty(ch))
     return CalibrationRecord(
         device=sec.get("device", str, required=True),
         channel_gains=gains,
-        reference_volts=ref,
-        reference_uncertainty_v=unc,
+        reference_volts=refs,
+        reference_uncertainty_v=uncs,
         measured_volts=measured,
         date_utc=date,
         note=sec.get("note", str, ""),
     )
+
+
+def _reference(sec: Section) -> float:
+    ref = sec.get("reference_volts", float, required=True)
+    if not (math.isfinite(ref) and ref > 0):
+        raise sec.error("reference_volts", f"must be positive, got {ref}")
+    return float(ref)
+
+
+def _uncertainty(sec: Section) -> float:
+    unc = sec.get("reference_uncertainty_v", float, required=True)
+    if not (math.isfinite(unc) and unc >= 0):
+        raise sec.error("reference_uncertainty_v", f"must be >= 0, got {unc}")
+    return float(unc)

@@ -323,6 +323,10 @@ def classify_event(event: Event, nominal_hz: float) -> dict[str, Any]:
     duration = event.duration_s
     if duration is None:
         raise ValueError(f"event {event.event_id} is still open: no duration to classify")
+    if event.kind == "rvc":         # rapid voltage change: its own small classification
+        from agent.events.rvc import classify_rvc
+        event.classification = classify_rvc(event)
+        return event.classification
     dip = event.dip_duration_s
     result = classify(event.kind, event.level_pu, max(0.0, duration), nominal_hz,
                       event.sag_energy_s, None if dip is None else max(0.0, dip))

@@ -8,7 +8,7 @@ from typing import Any, Literal
 import numpy as np
 import numpy.typing as npt
 
-EventKind = Literal["dip", "swell", "interruption"]
+EventKind = Literal["dip", "swell", "interruption", "rvc"]
 EndReason = Literal["recovery", "power_loss", "end_of_data"]
 
 
@@ -33,7 +33,7 @@ class Thresholds:
 
 @dataclass
 class Event:
-    """One dip, swell or interruption.
+    """One dip, swell, interruption or rapid voltage change (RVC).
 
     Times are sample indices of the raw signal (``start``, ``end``) plus UTC seconds
     (``start_utc``, ``end_utc``) from the timebase. ``level_v`` is the residual voltage
@@ -69,6 +69,12 @@ class Event:
     # UTC start [s] of the below-dip-threshold period enclosing an interruption (the moment
     # the event was first announced as a dip); None for dips and swells.
     enclosing_start_utc: float | None = None
+    # Rapid voltage changes only (kind "rvc", agent.events.rvc): ΔUmax and ΔUss [V] and the
+    # threshold and hysteresis used [fraction of Udin]; None for other kinds.
+    delta_umax_v: float | None = None
+    delta_uss_v: float | None = None
+    rvc_threshold: float | None = None
+    rvc_hysteresis: float | None = None
 
     @property
     def is_open(self) -> bool:

@@ -31,8 +31,10 @@ from agent.measurement.conditioning import (
     boxcar_lengths,
 )
 from agent.measurement.flagging import event_window_flags
+from agent.measurement.flicker import FlickerInterval, FlickerMeter
 from agent.measurement.frequency import whole_cycles
 from agent.measurement.harmonics import (
+    harmonic_ratios,
     max_harmonic_order,
     resample_points,
     thd_from_subgroups,
@@ -119,11 +121,15 @@ class MeasurementEngine:
         cycles cancel the offset's effect on them)
     band_fraction : zero-crossing hysteresis half-width [fraction of nominal peak]; below it
         no crossings are found and the nominal-period fallback takes over
+    flicker : run the IEC 61000-4-15 flickermeter (Pst/Plt on the 10-min aggregates, which
+        are then held until its interval is closed: at most about a second)
+    lamp : "230V" or "120V" weighting (default: 120V below 180 V declared, else 230V)
     """
 
     def __init__(self, info: SourceInfo, site: Site, thresholds: Thresholds, timebase: Timebase,
                  gains: npt.ArrayLike | None = None, *, dc_removal: bool = True,
-                 band_fraction: float = 0.08) -> None:
+                 band_fraction: float = 0.08, flicker: bool = True,
+                 lamp: str | None = None) -> None:
         c = info.channels
         if c < 1:
             raise ValueError("source has no channels")
@@ -176,12 +182,21 @@ class MeasurementEngine:
         self._g3: list[tuple[float, float, F64, F64, bool]] = []
         self._g3_period: int | None = None
         self._g10: list[tuple[F64, F64, bool]] = []
+        # Individual harmonics h2..H per 10-min period: sums of squared ratios and counts of
+        # finite values, (channels, orders) each.
+        self._h_sums: dict[int, tuple[F64, int]] = {}
         self._g10_period: int | None = None
         self._f_period: int | None = None
         self._f_utc: list[float] = []
         self._f_syn: list[bool] = []
         self._f_flag = False
         self._wave: F32 = np.zeros((c, 0), np.float32)
+        # Flicker (IEC 61000-4-15): the lamp model follows the declared voltage by default.
+        self.lamp = lamp or ("120V" if site.nominal_v < 180.0 else "230V")
+        self._flicker = (FlickerMeter(fs, c, site.nominal_v, self.lamp, f0) if flicker
+                         else None)
+        self._flicker_done: dict[int, FlickerInterval] = {}
+        self._held: list[Aggregate] = []
         self._reset_signal(0)
 
     @property
@@ -198,6 +213,11 @@ class MeasurementEngine:
     # ------------------------------------------------------------------ public API
     def process(self, block: Block) -> MeasurementOutput:
         """Measure one block; returns what became complete with it."""
+        m = self._process(block)
+        m.aggregates = self._release(m.aggregates)
+        return m
+
+    def _process(self, block: Block) -> MeasurementOutput:
         out = _Out()
         counts = np.asarray(block.counts)
         if counts.ndim != 2 or counts.shape[1] != self.channels:
@@ -238,6 +258,9 @@ class MeasurementEngine:
         self._next = start + n
         out.flags.extend(self._quality.update(counts, start))
         f = self._casc.process_running_sums(self._append_samples(counts))
+        if self._flicker is not None:
+            for iv in self._flicker.feed(self._wave[:, -n:], start, self.timebase.to_utc):
+                self._flicker_done[iv.period] = iv
         head = self._settle_until - start
         if head > 0:
             f[: min(head, n)] = 0.0
@@ -256,7 +279,38 @@ class MeasurementEngine:
         self._emit_freq(out)
         out.flags.extend(self._quality.finish())
         self._next = None
-        return out.build(self.channels)
+        if self._flicker is not None:
+            for iv in self._flicker.finish():
+                self._flicker_done[iv.period] = iv
+        m = out.build(self.channels)
+        m.aggregates = self._release(m.aggregates, final=True)
+        return m
+
+    def _release(self, new: list[Aggregate], final: bool = False) -> list[Aggregate]:
+        """Aggregates in emission order, a 10-min one held (with all after it) until the
+        flickermeter has closed its interval, then given its Pst/Plt."""
+        if self._flicker is None:
+            return new
+        self._held.extend(new)
+        out: list[Aggregate] = []
+        front = self._flicker.frontier
+        reached = -math.inf if front is None else self.timebase.to_utc(float(front))
+        while self._held:
+            agg = self._held[0]
+            if agg.kind == "10min":
+                period = round(agg.t_utc / TEN_MIN_S)
+                iv = self._flicker_done.pop(period, None)
+                if iv is None and not final and reached < agg.t_utc + TEN_MIN_S:
+                    break                       # the flickermeter has not got there yet
+                if iv is not None:
+                    agg.pst = iv.pst
+                    agg.plt = iv.plt
+                    agg.flicker_flagged = iv.flagged or agg.flagged
+                    agg.lamp = self.lamp
+                for k in [k for k in self._flicker_done if k < period]:
+                    del self._flicker_done[k]   # intervals with no 10-min aggregate
+            out.append(self._held.pop(0))
+        return out
 
     # ------------------------------------------------------------------ signal chain
     def _reset_signal(self, anchor: int) -> None:
@@ -272,6 +326,14 @@ class MeasurementEngine:
         self._cand: list[F64] = [np.zeros(0) for _ in range(c)]
         self._horizon = [-math.inf] * c
         self._chain = ChainState(last=None, anchor=anchor + self._delay)
+        # Each channel's own crossing chain (IEC 61000-4-30 Ed.3 cl. 5.4.2: Urms(1/2) on that
+        # channel's fundamental zero crossings): times, synthetic flags and the integrals of
+        # counts [0] and counts² [1] at each crossing, (2, m).
+        self._own_cand: list[F64] = [np.zeros(0) for _ in range(c)]
+        self._own_chain = [ChainState(last=None, anchor=anchor + self._delay) for _ in range(c)]
+        self._oc_t: list[F64] = [np.zeros(0) for _ in range(c)]
+        self._oc_p: list[I64] = [np.zeros((2, 0), np.int64) for _ in range(c)]
+        self._oc_r: list[F64] = [np.zeros((2, 0)) for _ in range(c)]
         self._wave = np.zeros((c, 0), np.float32)
         # Running sums of counts [0] and counts² [1] before each carried row, (2, n+1, c)
         # [count, count²] (int64, exact; they may wrap around, differences stay exact).
@@ -329,6 +391,8 @@ class MeasurementEngine:
                 t += s0 - d
                 cand = self._cand[c]
                 self._cand[c] = np.concatenate([cand, t]) if cand.shape[0] else t
+                own = self._own_cand[c]
+                self._own_cand[c] = np.concatenate([own, t]) if own.shape[0] else t
             keep = max(last_out, 0, seg.shape[0] - cap)
             self._seg[c] = seg[keep:].copy()
             self._seg_start[c] = s0 + keep
@@ -336,12 +400,17 @@ class MeasurementEngine:
             self._horizon[c] = s0 + keep - d
 
     def _advance(self, out: _Out, final: bool) -> None:
+        prev_last = self._chain.last
         new_t, new_syn = extend_chain(self._cand, self._horizon, self._chain, self._hp,
                                       3.0 * self._hp)
+        self._ref_new: tuple[F64, I64, F64] | None = None
+        self._ref_prev = prev_last
+        self._ref_real = bool(new_t.shape[0]) and not bool(new_syn.any())
         if new_t.shape[0]:
             utc = np.fromiter(map(self.timebase.to_utc, new_t.tolist()), np.float64,
                               new_t.shape[0])
             whole, rest = self._crossing_integrals(new_t)
+            self._ref_new = (new_t, whole, rest)
             self._cx_t = np.concatenate([self._cx_t, new_t])
             self._cx_syn = np.concatenate([self._cx_syn, new_syn])
             self._cx_utc = np.concatenate([self._cx_utc, utc])
@@ -356,11 +425,95 @@ class MeasurementEngine:
                 cand = self._cand[c]
                 if cand.shape[0]:
                     self._cand[c] = cand[np.searchsorted(cand, floor):]
-        self._emit_windows(out)
+        self._extend_own_chains()
+        self._emit_windows(out, final)
         self._emit_intervals(out, final)
         self._trim()
 
-    def _crossing_integrals(self, t_abs: F64) -> tuple[I64, F64]:
+    def _extend_own_chains(self) -> None:
+        """Extend every channel's own crossing chain from its own candidates only."""
+        news: list[F64] = []
+        ref = self._ref_new
+        for c in range(self.channels):
+            st = self._own_chain[c]
+            cand = self._own_cand[c]
+            if (ref is not None and self._ref_real and st.last is not None
+                    and st.last == self._ref_prev):
+                # In step with the shared chain, whose new crossings are all real: if they
+                # are this channel's next candidates, its own chain takes them as they are
+                # (the same choice extend_chain would make: channel 0, usually).
+                k = ref[0].shape[0]
+                i = int(cand.searchsorted(st.last + MIN_SPACING * self._hp))
+                if i + k <= cand.shape[0] and (cand[i:i + k] == ref[0]).all():
+                    st.last = float(ref[0][-1])
+                    news.append(ref[0])
+                    self._own_cand[c] = cand[i + k:]
+                    continue
+            new_t, _ = extend_chain([cand], [self._horizon[c]], st, self._hp,
+                                    3.0 * self._hp)
+            news.append(new_t)
+            if new_t.shape[0]:
+                cand = self._own_cand[c]
+                floor = float(st.last) + MIN_SPACING * self._hp  # type: ignore[arg-type]
+                self._own_cand[c] = cand[np.searchsorted(cand, floor):]
+        # A channel whose new crossings are the shared chain's (channel 0, usually) takes
+        # their integrals as they are; the others get one pass (each reads its own column).
+        shared = [ref is not None and t.shape == ref[0].shape and bool((t == ref[0]).all())
+                  for t in news]
+        counts = [0 if sh else t.shape[0] for t, sh in zip(news, shared, strict=True)]
+        if any(counts):
+            chan = np.repeat(np.arange(self.channels), counts)
+            whole, rest = self._crossing_integrals(np.concatenate(
+                [t for t, n in zip(news, counts, strict=True) if n]), chan)
+            cuts = np.cumsum(counts)[:-1]
+            parts = list(zip(np.split(whole, cuts, axis=1), np.split(rest, cuts, axis=1),
+                             strict=True))
+        for c, t in enumerate(news):
+            if not t.shape[0]:
+                continue
+            if shared[c]:
+                assert ref is not None
+                w, r = ref[1][:, :, c], ref[2][:, :, c]
+            else:
+                w, r = parts[c]
+            self._oc_t[c] = np.concatenate([self._oc_t[c], t])
+            self._oc_p[c] = np.concatenate([self._oc_p[c], w], axis=1)
+            self._oc_r[c] = np.concatenate([self._oc_r[c], r], axis=1)
+
+    def _own_windows(self, starts: F64, ends: F64, urms: F64, dc: F64 | None) -> None:
+        """Replace urms[:, c] by channel c's own Urms(1/2): the one-cycle window on c's own
+        crossings that ended last at or before each row's end (in place). Rows before c's
+        chain holds a whole window keep the shared-chain value. Crossings no later row can
+        need are dropped."""
+        for c in range(self.channels):
+            t = self._oc_t[c]
+            idx = np.searchsorted(t, ends, side="right") - 1
+            j = idx - 2
+            ok = j >= 0
+            if ok.all() and (t[idx] == ends).all() and (t[j] == starts).all():
+                ok[:] = False                   # the shared windows already: same values
+            if ok.any():
+                hi, lo = idx[ok], j[ok]
+                pc, rc = self._oc_p[c], self._oc_r[c]
+                d = (pc[:, hi] - pc[:, lo]).astype(np.float64)
+                d += rc[:, hi]
+                d -= rc[:, lo]
+                sc = self.scale[c]
+                span = t[hi] - t[lo]
+                msq = d[1] * (sc * sc) / span
+                mean = d[0] * sc / span
+                if dc is not None:
+                    urms[ok, c] = rms_without_dc(msq, mean, dc[ok, c])
+                else:
+                    urms[ok, c] = np.sqrt(np.maximum(msq, 0.0))
+            drop = int(idx[-1]) - 3
+            if drop > 0:
+                self._oc_t[c] = t[drop:]
+                self._oc_p[c] = self._oc_p[c][:, drop:]
+                self._oc_r[c] = self._oc_r[c][:, drop:]
+
+    def _crossing_integrals(self, t_abs: F64, channel: npt.NDArray[np.intp] | None = None
+                            ) -> tuple[I64, F64]:
         """Integrals of the piecewise-linear interpolant of the counts x [0] and of x² [1]
         from the origin of the running sums to each crossing [count · samples, count² ·
         samples], (2, m, channels), as an exact integer part (the running sum at the
@@ -378,6 +531,12 @@ class MeasurementEngine:
         w1 *= 0.5                          # weight of (v1 - v0): integral of the slope
         w0 = frac + 0.5                    # weight of v0 (its half-trapezoid included)
         w0 -= w1
+        if channel is not None:            # one channel per crossing: (2, m, 3)
+            pc = self._p[:, rows, channel[:, None]]
+            dc = pc[:, :, 1:] - pc[:, :, :-1]
+            rest_c = dc[:, :, 0] * w0[:, 0]
+            rest_c += dc[:, :, 1] * w1[:, 0]
+            return pc[:, :, 0], rest_c
         p = self._p[:, rows]               # (2, m, 3, channels)
         d = p[:, :, 1:] - p[:, :, :-1]     # samples at the floor and the next row, exact
         rest = d[:, :, 0] * w0
@@ -393,12 +552,22 @@ class MeasurementEngine:
         d *= self._scale_xq
         return d[1], d[0]
 
-    def _emit_windows(self, out: _Out) -> None:
+    def _emit_windows(self, out: _Out, final: bool = False) -> None:
         base = self._cx_base
         k0, k1 = self._next_win, base + self._cx_t.shape[0] - 2
         if k1 <= k0:
             return
         lo, hi = k0 - base, k1 - base
+        if not final:
+            # A row waits until every channel's own chain is final past its end.
+            lasts = [st.last for st in self._own_chain]
+            if any(v is None for v in lasts):
+                return
+            limit = min(float(v) for v in lasts if v is not None)
+            hi = lo + int(np.searchsorted(self._cx_t[lo + 2:hi + 2], limit, side="right"))
+            if hi <= lo:
+                return
+            k1 = base + hi
         a = self._cx_t[lo:hi]
         b = self._cx_t[lo + 2:hi + 2]
         iq, ix = self._between(slice(lo, hi), slice(lo + 2, hi + 2))
@@ -410,7 +579,9 @@ class MeasurementEngine:
             self._cx_dc[lo:hi] = dc
             urms = rms_without_dc(msq, mean, dc)
         else:
+            dc = None
             urms = np.sqrt(np.maximum(msq, 0.0))
+        self._own_windows(a, b, urms, dc)
         syn = self._cx_syn
         synthetic = syn[lo:hi] | syn[lo + 1:hi + 1]
         synthetic |= syn[lo + 2:hi + 2]
@@ -465,6 +636,9 @@ class MeasurementEngine:
         """Basic intervals that became complete: first crossing (global index) and cycles."""
         base, n = self._cx_base, self._cx_t.shape[0]
         total = base + n
+        if not final:          # an interval's flag needs every window that overlaps it
+            total = min(total, self._next_win + 2)
+            n = total - base
         i0 = self._iv_start
         step = 2 * self._cycles
         if i0 - base < n and self._cx_p10[i0 - base] == self._cx_p10[n - 1]:
@@ -519,6 +693,7 @@ class MeasurementEngine:
         rms = rms_without_dc(msq, mean, self._cx_dc[i0s])
         thd = np.full(rms.shape, np.nan)
         imb = np.full(cyc.shape[0], np.nan)
+        ysg2 = np.zeros((self.channels, cyc.shape[0], self._order if self._order >= 2 else 0))
         # Spectra in batches so a huge block (a whole file at once) keeps memory bounded.
         for b0 in range(0, cyc.shape[0], SPECTRA_BATCH):
             sl = slice(b0, b0 + SPECTRA_BATCH)
@@ -527,8 +702,21 @@ class MeasurementEngine:
                                          max(self._order, 1), self._points, self._frac)
             if self._order >= 2:                # else the sample rate allows no harmonic
                 thd[sl] = thd_from_subgroups(ysg).T
+                np.square(ysg, out=ysg2[:, sl])
             if self._imbalance == "u2":         # fundamental phasors, (m, 3)
                 imb[sl] = negative_sequence_ratio(fund.T)
+        # Individual harmonics need the 5 Hz bins of a whole basic interval (IEC 61000-4-7):
+        # the short interval before a 10-min tick or at the end of data is left out. Sums of
+        # squared subgroups (orders 1..H) per 10-min period, the block's intervals at once.
+        if ysg2.shape[-1]:
+            full = cyc == self._cycles
+            p10_arr = self._cx_p10[i0s]
+            for per in (np.unique(p10_arr).tolist() if p10_arr[0] != p10_arr[-1]
+                        else [int(p10_arr[0])]):
+                rows = full & (p10_arr == per)
+                if rows.any():
+                    sq, n = self._h_sums.get(per, (0.0, 0))
+                    self._h_sums[per] = (ysg2[:, rows].sum(axis=1) + sq, int(rows.sum()) + n)
         if self._imbalance == "split":
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)
@@ -564,6 +752,9 @@ class MeasurementEngine:
             keep_sample = math.floor(first) - 2
         else:
             keep_sample = math.floor(self._chain.anchor) - 2
+        for st in self._own_chain:       # each channel's next crossing needs its samples
+            own = st.anchor if st.last is None else st.last
+            keep_sample = min(keep_sample, math.floor(own) - 2)
         cut = min(keep_sample - self._buf_start, self._wave.shape[1])
         if cut > 0:
             self._wave = self._wave[:, cut:]
@@ -614,8 +805,24 @@ class MeasurementEngine:
             kind="10min", t_utc=self._g10_period * TEN_MIN_S, duration_s=TEN_MIN_S,
             rms=tuple(float(v) for v in rms_aggregate(np.array([r[0] for r in g]))),
             thd=tuple(float(v) for v in rms_aggregate(np.array([r[1] for r in g]))),
-            flagged=any(r[2] for r in g), count=len(g)))
+            flagged=any(r[2] for r in g), count=len(g), harmonics=self._harmonics_10min()))
         self._g10 = []
+
+    def _harmonics_10min(self) -> tuple[tuple[float, ...], ...]:
+        """Each channel's h2..H over the period being emitted: the RMS of each order's
+        subgroup over the period's whole basic intervals (IEC 61000-4-30 cl. 4.5
+        aggregation) relative to the fundamental's; NaN where there is none."""
+        if self._order < 2 or self._g10_period is None:
+            return ()
+        period = self._g10_period
+        got = self._h_sums.pop(period, None)
+        for k in [k for k in self._h_sums if k < period]:
+            del self._h_sums[k]
+        if got is None:
+            return tuple(tuple([math.nan] * (self._order - 1)) for _ in range(self.channels))
+        sq, _n = got                       # (channels, H); the count cancels in the ratio
+        ratio = harmonic_ratios(np.sqrt(sq))
+        return tuple(tuple(float(v) for v in row) for row in ratio)
 
     def _feed_freq(self, out: _Out, utc: F64, syn: BOOL, flagged: BOOL) -> None:
         if utc.shape[0] == 0:

@@ -40,8 +40,17 @@ def thd_label(max_order: int | None) -> str:
 
 
 def resample_points(n_samples: int) -> int:
-    """Power of two >= the samples in the window (no decimation, so no aliasing)."""
-    return int(1 << int(np.ceil(np.log2(max(n_samples, 2)))))
+    """The smallest 2^a·3^b >= the samples in the window (no decimation, so no aliasing):
+    a length the FFT factors well (1728 for a 1707-sample window, where the next power of
+    two, 2048, costs about 1.5x the transform and 1.2x the interpolation)."""
+    n = max(int(n_samples), 2)
+    best = 1 << int(np.ceil(np.log2(n)))
+    p3 = 1
+    while p3 < best:
+        m = p3 << max(0, int(np.ceil(np.log2(n / p3))))
+        best = min(best, m)
+        p3 *= 3
+    return int(best)
 
 
 def catmull_rom(x: F64, positions: F64, dtype: type[np.floating] = np.float64
@@ -142,7 +151,7 @@ def window_spectra(x: F64, start: F64, end: F64, points: int,
     ----------
     x : (n, channels)  [V]
     start, end : (m,)  [sample index into x]; each window is a whole number of cycles
-    points : int, power of two
+    points : int, a length the FFT factors well (resample_points)
     dtype : interpolation precision (float32: about 1e-7 relative rounding, half the cost)
 
     Returns
@@ -218,7 +227,7 @@ def window_subgroups(rows: npt.NDArray[np.floating], start: F64, end: F64,
     start, end : (m,)  [sample index into rows]; each window is ``cycles`` whole cycles
     cycles : (m,) int
     max_order : highest harmonic order H (>= 1)
-    points : int, power of two
+    points : int, a length the FFT factors well (resample_points)
     frac : ``np.arange(points) / points``, if the caller keeps it
 
     Returns
@@ -240,7 +249,7 @@ def window_subgroups(rows: npt.NDArray[np.floating], start: F64, end: F64,
     pos += start[:, None]
     _catmull_rom_rows_in_place(rows, pos, seg)
     spec = np.fft.rfft(seg, axis=-1)
-    scale = 2.0 / points                    # a power of two: exact, so scaling may come last
+    scale = 2.0 / points                    # applied last (one rounding)
     cyc = np.asarray(cycles, dtype=np.intp)
     last = spec.shape[-1] - 1
     m = cyc.shape[0]
@@ -272,6 +281,27 @@ def thd_from_subgroups(ysg: F64) -> F64:
     fund = ysg[..., 0]
     rest = np.sqrt((ysg[..., 1:] ** 2).sum(axis=-1))
     return np.divide(rest, fund, out=np.full(fund.shape, np.nan), where=fund > 0)
+
+
+def harmonic_ratios(ysg: F64) -> F64:
+    """Individual harmonic subgroups h = 2..H as fractions of the fundamental subgroup.
+
+    Parameters
+    ----------
+    ysg : (..., H)  [V], subgroups of orders 1..H
+
+    Returns
+    -------
+    ratios : (..., H - 1)  [fraction of Ysg_1]; NaN where Ysg_1 = 0
+
+    References
+    ----------
+    IEC 61000-4-7 Ed.2 clause 5.6 (harmonic subgroup); EN 50160 and IEEE 519 state individual
+    harmonic voltages relative to the fundamental.
+    """
+    fund = ysg[..., :1]
+    out = np.full(ysg[..., 1:].shape, np.nan)
+    return np.divide(ysg[..., 1:], fund, out=out, where=fund > 0)
 
 
 def window_thd(x: npt.ArrayLike, start: npt.ArrayLike, end: npt.ArrayLike, cycles: npt.ArrayLike,

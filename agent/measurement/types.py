@@ -77,6 +77,20 @@ class Aggregate:
     hz: float | None = None
     flagged: bool = False
     count: int = 0
+    harmonics: tuple[tuple[float, ...], ...] = ()
+    """10-min only: per channel, harmonic subgroups h2..h40 (as far as the sample rate
+    allows), each the RMS of its 10/12-cycle values over the period divided by the
+    fundamental's (IEC 61000-4-7 subgroups, IEC 61000-4-30 cl. 4.5 aggregation); NaN where
+    none."""
+    pst: tuple[float, ...] = ()
+    """10-min only: short-term flicker severity per channel (IEC 61000-4-15); NaN where none."""
+    plt: tuple[float, ...] | None = None
+    """10-min aggregates ending a 2-h mark: long-term flicker severity per channel."""
+    flicker_flagged: bool = False
+    lamp: str = ""
+    """The flickermeter's lamp model ("230V" or "120V") when ``pst`` is set."""
+    """Pst not to be trusted: the flickermeter was settling, the interval is incomplete, or
+    it overlaps a dip, swell or interruption."""
 
 
 @dataclass

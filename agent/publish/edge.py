@@ -455,6 +455,7 @@ def run_edge(
         gains=settings.gains(),
         capture=settings.capture,
         journal_path=settings.state_dir / "open-events.json",
+        rvc=settings.rvc,
         sinks=[sink],
     )
     assert parts.journal is not None

@@ -10,6 +10,7 @@ import numpy as np
 
 from agent.events.types import Event
 from agent.pipeline import Frame
+from agent.report.power_quality import analysis_sections
 
 
 def infer_frequency(volts: np.ndarray, rate: float) -> float:
@@ -53,7 +54,15 @@ def event_record(ev: Event) -> dict[str, Any]:
         "enclosing_level_v": _num(ev.enclosing_level_v, 3),
         "ended_by": ev.ended_by,
         "en50160_cell": c.get("en50160_dip_cell") or c.get("en50160_swell_cell"),
+        **_rvc_fields(ev),
     }
+
+
+def _rvc_fields(ev: Event) -> dict[str, Any]:
+    """ΔUmax and ΔUss [V] of a rapid voltage change (nothing for other kinds)."""
+    if ev.kind != "rvc":
+        return {}
+    return {"delta_umax_v": _num(ev.delta_umax_v, 3), "delta_uss_v": _num(ev.delta_uss_v, 3)}
 
 
 @dataclass
@@ -68,6 +77,7 @@ class AnalysisCollector:
     aggregates: list[dict[str, Any]] = field(default_factory=list)
     captures: int = 0
     rate: float = 1.0
+    ten_min: list[Any] = field(default_factory=list)   # 10-min Aggregates (flicker section)
 
     def __call__(self, frame: Frame) -> Frame:
         m = frame.measurement
@@ -82,6 +92,7 @@ class AnalysisCollector:
                         "flagged": bool(iv.flagged[k]),
                     }
                 )
+            self.ten_min.extend(a for a in m.aggregates if a.kind == "10min")
             for agg in m.aggregates:
                 if agg.hz is not None:
                     self.frequency.append({"t": round(agg.t_utc, 3), "hz": round(agg.hz, 5)})
@@ -136,6 +147,7 @@ class AnalysisCollector:
             "events": [event_record(e) for e in events],
             "captures": self.captures,
             "flags": self.flags,
+            **analysis_sections(self.ten_min),
         }
 
 

@@ -50,6 +50,7 @@ from agent.report.compliance import (
     summarise,
     ten_minute_means,
 )
+from agent.report.power_quality import device_sections
 from agent.site import infer_nominal
 from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore, from_json
@@ -472,11 +473,12 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         arrays = trend.arrays()
         if end_utc is not None and first_data.get(name, dev.get("first_seen") or 0.0) >= end_utc:
             continue  # not yet monitored in the period
-        sections.append(_device_section(dev, events, arrays,
-                                        _ten_min(_payloads(store, "aggregates", name,
-                                                           start_utc, end_utc)),
+        aggregates = _payloads(store, "aggregates", name, start_utc, end_utc)
+        sections.append(_device_section(dev, events, arrays, _ten_min(aggregates),
                                         trend.errors, now,
                                         default_nominal_v, planned_stop_after))
+        # Harmonics and flicker verdicts per channel (agent.report.power_quality).
+        sections[-1].update(device_sections([p for p in aggregates if isinstance(p, dict)]))
         for ev in events:
             rec = _record(ev, models[name])
             if rec is not None:

@@ -48,14 +48,17 @@ a misspelt category can never grow the tag space.
 ``hc_trend_device``  (summary) tags ``site, device``; fields ``hz`` [Hz], ``imbalance``
     [fraction], ``flags`` (bitmask), ``event`` (0/1); time = start of each second.
 ``hc_aggregate``  tags ``site, device, channel, interval`` (the aggregate ``kind``: 3s, 10s,
-    10min, ...); fields ``rms`` [V], ``thd`` [fraction], ``flagged`` (0/1), ``count``.
+    10min, ...); fields ``rms`` [V], ``thd`` [fraction], ``flagged`` (0/1), ``count``, and
+    on 10-min aggregates (v2) ``h2`` .. ``h40`` [fraction of the fundamental], ``pst``,
+    ``plt`` (at 2-h marks) and ``flicker_flagged`` (0/1).
 ``hc_aggregate_device``  tags ``site, device, interval``; fields ``hz`` [Hz], ``flagged``,
     ``count`` (frequency aggregates).
 ``hc_event``  (ended event) tags ``site, device, kind, category`` (IEEE 1159, e.g.
     ``momentary_sag``), ``itic`` (no_interruption / no_damage / prohibited), ``semi_f47``
     (inside / outside), ``severity_class`` (``within_curve`` when the IEEE 1564 sag severity
     Se ≤ 1, ``beyond_curve`` above), ``ended_by``; fields ``level_pu, level_v, duration_s,
-    severity, sag_energy_s, end_uncertainty_s, time_error_s``; time = event start.
+    severity, sag_energy_s, end_uncertainty_s, time_error_s`` and, for rapid voltage changes
+    (kind ``rvc``), ``delta_umax_v, delta_uss_v``; time = event start.
 ``hc_event_open``  (started, not yet ended) tags ``site, device, kind``; fields
     ``level_pu, level_v``; time = event start. The ended event goes to ``hc_event``, so
     counting ``hc_event`` never counts an event twice.
@@ -100,7 +103,7 @@ Precision = Literal["s", "ms", "us", "ns"]
 _TICKS_PER_SECOND: dict[str, int] = {"s": 1, "ms": 10**3, "us": 10**6, "ns": 10**9}
 
 # --- enumerations (tag vocabularies) -----------------------------------------------------------
-EVENT_KINDS = frozenset({"dip", "swell", "interruption"})
+EVENT_KINDS = frozenset({"dip", "swell", "interruption", "rvc"})
 END_REASONS = frozenset({"recovery", "power_loss", "end_of_data"})
 # IEEE 1159 categories (1995/2009 tables).
 IEEE1159_CATEGORIES = frozenset({
@@ -304,6 +307,50 @@ def _message_timestamp(payload: Mapping[str, Any], kind: str, precision: Precisi
     return to_timestamp(_number(t, "t", kind), precision)
 
 
+def _harmonic_fields(payload: Mapping[str, Any], channels: int, kind: str
+                     ) -> list[dict[str, float | None]]:
+    """Per channel ``{"h2": fraction, ...}`` from an aggregate's v2 ``harmonics`` (or empty)."""
+    field = payload.get("harmonics")
+    if not field:
+        return [{} for _ in range(channels)]
+    if not isinstance(field, Mapping) or not isinstance(field.get("values"), list):
+        raise PayloadError(kind, "harmonics must be a map with a values list")
+    first = field.get("first", 2)
+    exp = field.get("exp", -4)
+    if not all(isinstance(x, int) and not isinstance(x, bool) for x in (first, exp)):
+        raise PayloadError(kind, "harmonics first and exp must be integers")
+    rows = list(field["values"]) + [None] * channels
+    out: list[dict[str, float | None]] = []
+    for row in rows[:channels]:
+        if row is None:
+            out.append({})
+            continue
+        if not isinstance(row, list):
+            raise PayloadError(kind, "harmonics values must be lists")
+        out.append({f"h{first + i}": (None if x is None else _number(x, "harmonics", kind)
+                                      * 10.0 ** exp) for i, x in enumerate(row)})
+    return out
+
+
+def _flicker_fields(payload: Mapping[str, Any], channels: int, kind: str
+                    ) -> list[dict[str, float | None]]:
+    """Per channel ``pst`` / ``plt`` (and ``flicker_flagged`` 0/1) from an aggregate's v2
+    ``flicker`` (or empty)."""
+    field = payload.get("flicker")
+    if not field:
+        return [{} for _ in range(channels)]
+    if not isinstance(field, Mapping) or not isinstance(field.get("pst"), list):
+        raise PayloadError(kind, "flicker must be a map with a pst list")
+    pst = (list(field["pst"]) + [None] * channels)[:channels]
+    plt = field.get("plt")
+    plt = (list(plt) + [None] * channels)[:channels] if isinstance(plt, list) else [None] * channels
+    flagged = 1.0 if field.get("flagged") else 0.0
+    return [{"pst": None if p is None else _number(p, "pst", kind),
+             "plt": None if q is None else _number(q, "plt", kind),
+             "flicker_flagged": flagged if p is not None else None}
+            for p, q in zip(pst, plt, strict=True)]
+
+
 def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[LinePoint]:
     """``hc_aggregate`` points per channel and an ``hc_aggregate_device`` point (frequency)
     for one ``aggregate`` message (schemas/aggregate.schema.json)."""
@@ -323,14 +370,17 @@ def aggregate_points(payload: Mapping[str, Any], precision: Precision) -> list[L
         raise PayloadError(kind, "count must be an integer")
     interval = _enum(_first(payload, "kind", "interval") or "10min", AGGREGATE_INTERVALS,
                      "interval")
+    harm = _harmonic_fields(payload, len(names), kind)
+    for i, extra in enumerate(_flicker_fields(payload, len(names), kind)):
+        harm[i].update(extra)
     out = []
-    for name, r, h in zip(names, rms, thd, strict=True):
+    for name, r, h, hf in zip(names, rms, thd, harm, strict=True):
         if r is None and h is None:
             continue
         out.append(LinePoint("hc_aggregate",
                              (("channel", name), ("device", device), ("interval", interval),
                               ("site", site)),
-                             _fields(rms=r, thd=h, flagged=int(flagged), count=count), ts))
+                             _fields(rms=r, thd=h, flagged=int(flagged), count=count, **hf), ts))
     hz = _opt_number(payload, "hz", kind)
     if hz is not None:
         out.append(LinePoint("hc_aggregate_device",
@@ -451,7 +501,9 @@ def event_points(payload: Mapping[str, Any], precision: Precision) -> list[LineP
     fields = _fields(level_pu=level_pu, level_v=level_v, duration_s=duration, severity=severity,
                      sag_energy_s=_opt_number(payload, "sag_energy_s", kind),
                      end_uncertainty_s=_opt_number(payload, "end_uncertainty_s", kind),
-                     time_error_s=_opt_number(sync, "error_s", kind))
+                     time_error_s=_opt_number(sync, "error_s", kind),
+                     delta_umax_v=_opt_number(payload, "delta_umax_v", kind),
+                     delta_uss_v=_opt_number(payload, "delta_uss_v", kind))
     return [LinePoint("hc_event", tags, fields, ts)]
 
 

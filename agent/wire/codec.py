@@ -38,12 +38,16 @@ from agent.wire.topics import check_id, parse_topic
 from agent.wire.validate import validate
 
 SCHEMA_VERSION = 1
-# Message kinds whose current schema version is newer than 1 (schemas/*.schema.json ``v``):
-# event v2 adds ``dip_duration_s``; status v2 adds ``last_stop`` and ``thd_max_order``.
-SCHEMA_VERSIONS: dict[str, int] = {"event": 2, "status": 2}
+# The version written per message type where it moved on (schemas/*.schema.json list the
+# versions still read): event v2 adds ``dip_duration_s`` and rapid voltage changes (kind
+# "rvc", delta_umax_v, delta_uss_v, rvc_threshold, rvc_hysteresis); status v2 adds
+# ``last_stop`` and ``thd_max_order``; aggregate v2 adds the 10-min "harmonics" and "flicker".
+SCHEMA_VERSIONS: dict[str, int] = {"event": 2, "status": 2, "aggregate": 2}
+WRITE_VERSIONS = SCHEMA_VERSIONS
 #: The ``reason`` of the offline status and retained presence a clean stop sends; the restart
 #: after it reports ``last_stop = "planned"`` (agent.publish.edge, agent.collect.outages).
 PLANNED_STOP = "planned_stop"
+HARMONIC_EXP = -4          # individual harmonics travel in units of 0.01 % of the fundamental
 F64 = npt.NDArray[np.float64]
 
 # Largest message decode() accepts by default [bytes]; capture chunks are bounded by the MQTT
@@ -239,12 +243,42 @@ def summary_arrays(msg: Mapping[str, Any]) -> SummaryArrays:
 
 def aggregate_body(agg: Aggregate, channels: Iterable[str]) -> dict[str, Any]:
     """A measurement :class:`Aggregate` as a message body (NaN per-channel values -> null)."""
-    return _body(
+    body = _body(
         "aggregate", kind=agg.kind, t=_req_float(agg.t_utc, "t_utc"),
         duration_s=_req_float(agg.duration_s, "duration_s"), channels=list(channels),
         rms=[_opt_float(x, "rms") for x in agg.rms], thd=[_opt_float(x, "thd") for x in agg.thd],
         hz=_opt_float(agg.hz, "hz"), flagged=bool(agg.flagged), count=int(agg.count),
     )
+    if agg.harmonics:
+        body["harmonics"] = harmonics_field(agg.harmonics)
+    if agg.pst:
+        fl: dict[str, Any] = {"pst": [_opt_float(x, "pst") for x in agg.pst],
+                              "flagged": bool(agg.flicker_flagged)}
+        if agg.plt is not None:
+            fl["plt"] = [_opt_float(x, "plt") for x in agg.plt]
+        # The lamp model is configuration (120V below 180 V declared): not repeated on every
+        # aggregate, to keep a three-phase monitor inside 1.5 MB/day.
+        body["flicker"] = fl
+    return body
+
+
+def harmonics_field(per_channel: Iterable[Iterable[float]]) -> dict[str, Any]:
+    """Per-channel h2.. ratios [fraction] as compact integers of 10^HARMONIC_EXP (NaN -> null)."""
+    unit = 10.0 ** HARMONIC_EXP
+    values: list[list[int | None] | None] = []
+    for row in per_channel:
+        q = [None if not math.isfinite(v) else round(v / unit) for v in row]
+        values.append(None if all(x is None for x in q) else q)
+    return {"first": 2, "exp": HARMONIC_EXP, "values": values}
+
+
+def harmonics_from_field(field: Mapping[str, Any] | None) -> tuple[tuple[float, ...], ...]:
+    """Inverse of :func:`harmonics_field`: per channel h2.. [fraction], NaN for null."""
+    if not field:
+        return ()
+    unit = 10.0 ** int(field["exp"])
+    return tuple(() if row is None else tuple(math.nan if x is None else x * unit for x in row)
+                 for row in field["values"])
 
 
 def aggregate_from_message(msg: Mapping[str, Any]) -> Aggregate:
@@ -255,8 +289,20 @@ def aggregate_from_message(msg: Mapping[str, Any]) -> Aggregate:
         kind=msg["kind"], t_utc=float(msg["t"]), duration_s=float(msg["duration_s"]),
         rms=tuple(f(x) for x in msg["rms"]), thd=tuple(f(x) for x in msg["thd"]),
         hz=None if msg["hz"] is None else float(msg["hz"]), flagged=bool(msg["flagged"]),
-        count=int(msg["count"]),
+        count=int(msg["count"]), harmonics=harmonics_from_field(msg.get("harmonics")),
+        **_flicker_from_field(msg.get("flicker")),
     )
+
+
+def _flicker_from_field(field: Mapping[str, Any] | None) -> dict[str, Any]:
+    if not field:
+        return {}
+    def f(x: Any) -> float:
+        return math.nan if x is None else float(x)
+    plt = field.get("plt")
+    return {"pst": tuple(f(x) for x in field["pst"]),
+            "plt": None if plt is None else tuple(f(x) for x in plt),
+            "flicker_flagged": bool(field["flagged"]), "lamp": str(field.get("lamp", ""))}
 
 
 # --- event ------------------------------------------------------------------------------
@@ -302,6 +348,11 @@ def event_body(
         classification=None if event.classification is None else _plain(event.classification),
         classifier_version=classifier_version,
     )
+    if event.kind == "rvc":
+        body["delta_umax_v"] = _req_float(event.delta_umax_v or 0.0, "delta_umax_v")
+        body["delta_uss_v"] = _req_float(event.delta_uss_v or 0.0, "delta_uss_v")
+        body["rvc_threshold"] = _opt_float(event.rvc_threshold, "rvc_threshold")
+        body["rvc_hysteresis"] = _opt_float(event.rvc_hysteresis, "rvc_hysteresis")
     if channel_names is not None:
         body["channel_names"] = list(channel_names)
     return body
@@ -340,6 +391,9 @@ def event_from_message(msg: Mapping[str, Any]) -> EventMessage:
         ended_by=msg["ended_by"], end_uncertainty_s=opt(msg["end_uncertainty_s"]),
         time_error_s=opt(msg["sync"]["error_s"]), sync_state=msg["sync"]["state"],
         classification=None if msg["classification"] is None else dict(msg["classification"]),
+        delta_umax_v=opt(msg.get("delta_umax_v")), delta_uss_v=opt(msg.get("delta_uss_v")),
+        rvc_threshold=opt(msg.get("rvc_threshold")),
+        rvc_hysteresis=opt(msg.get("rvc_hysteresis")),
     )
     names = msg.get("channel_names")
     return EventMessage(

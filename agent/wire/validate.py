@@ -695,9 +695,9 @@ class Validator:
     def __init__(self, folder: Path | None = None) -> None:
         folder = folder or schemas_dir()
         self.schemas: dict[str, dict[str, Any]] = {}
-        # Every schema version a kind accepts (``v``: a const, or an enum of ints when a newer
-        # version only added optional fields, so older messages stay valid).
-        self.versions: dict[str, tuple[int, ...]] = {}
+        self.versions: dict[str, int] = {}
+        """The version this build writes, per message type (the highest it reads)."""
+        self.accepted_versions: dict[str, frozenset[int]] = {}
         self._checks: dict[str, Check] = {}
         self._strict: dict[str, Check] = {}
         self._ok: dict[str, Pred] = {}
@@ -711,17 +711,18 @@ class Validator:
                 schema = json.loads(f.read_text(encoding="utf-8"))
             except json.JSONDecodeError as exc:
                 raise SchemaLoadError(f"{f}: not valid JSON: {exc}") from None
-            vnode = schema.get("properties", {}).get("v", {})
-            vs = [vnode["const"]] if "const" in vnode else vnode.get("enum")
+            vspec = schema.get("properties", {}).get("v", {})
+            # One version (const), or several this build still reads (enum; it writes the
+            # highest): an older device's messages stay valid after a schema gains fields.
+            accepted = [vspec["const"]] if "const" in vspec else list(vspec.get("enum", []))
             t = schema.get("properties", {}).get("type", {}).get("const")
-            if (not isinstance(vs, list) or not vs
-                    or not all(isinstance(x, int) and not isinstance(x, bool) for x in vs)
-                    or t != kind):
+            if (not accepted or not all(isinstance(v, int) and not isinstance(v, bool)
+                                        for v in accepted) or t != kind):
                 raise SchemaLoadError(
-                    f"{f}: needs properties.v.const (int) or .enum (ints) and type.const "
-                    f"{kind!r}")
+                    f"{f}: needs properties.v.const or .enum (ints) and type.const {kind!r}")
             self.schemas[kind] = schema
-            self.versions[kind] = tuple(sorted(vs))
+            self.versions[kind] = max(accepted)
+            self.accepted_versions[kind] = frozenset(accepted)
             self._checks[kind] = _Compiler(schema, f.name, strict_int=False).compile(schema)
             self._strict[kind] = _Compiler(schema, f.name, strict_int=True).compile(schema)
             self._ok[kind] = _Compiler(schema, f.name, strict_int=False).predicate(schema)
@@ -747,8 +748,8 @@ class Validator:
         v = msg.get("v")
         if "v" not in msg:
             raise WireError("$: missing required property 'v'", "schema")
-        if isinstance(v, bool) or not isinstance(v, int) or v not in self.versions[kind]:
-            reads = ", ".join(str(x) for x in self.versions[kind])
+        if isinstance(v, bool) or not isinstance(v, int) or v not in self.accepted_versions[kind]:
+            reads = ", ".join(map(str, sorted(self.accepted_versions[kind])))
             raise WireError(f"$.v: unsupported schema version {_describe(v)} for {kind} "
                             f"(this build reads v={reads})", "unknown_version")
         try:

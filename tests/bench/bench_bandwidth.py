@@ -113,13 +113,26 @@ def day_of_trend(channels: int, heartbeat_s: int, props: int, ack_every: int = 1
     s_js = sum(packet("summary", len(json_summary(b)), props) for b in bodies)
 
     n_agg = DAY // 600
+    # Individual harmonics h2..h40 and Pst on every 10-min aggregate, Plt on one in 12 (the
+    # 2-h marks): invented levels, odd orders 0.2-4 %, even and high orders below 0.3 %.
+    orders = np.arange(2, 41)
+    level = np.where(orders % 2 == 1, 0.04 / orders**0.8, 0.002 / orders**0.5)
+    harmonics = tuple(tuple(level * rng.uniform(0.5, 1.5, orders.shape[0]))
+                      for _ in range(channels))
     agg = aggregate_body(Aggregate(kind="10min", t_utc=T0, duration_s=600.0,
                                    rms=tuple(230.0 + rng.normal(0, 1, channels)),
                                    thd=tuple(0.03 + rng.normal(0, 0.001, channels)),
-                                   flagged=False, count=3000), names)
+                                   flagged=False, count=3000, harmonics=harmonics,
+                                   pst=tuple(rng.uniform(0.2, 0.9, channels)),
+                                   lamp="230V"), names)
     a_msg = IDENT.stamp({**agg, "clock": dict(CLOCK)}, seq)
-    a_mp = n_agg * packet("aggregate", len(encode(a_msg)), props)
-    a_js = n_agg * packet("aggregate", len(json_plain(a_msg)), props)
+    p_msg = {**a_msg, "flicker": {**a_msg["flicker"],
+                                  "plt": list(rng.uniform(0.2, 0.9, channels))}}
+    n_plt = n_agg // 12
+    a_mp = ((n_agg - n_plt) * packet("aggregate", len(encode(a_msg)), props)
+            + n_plt * packet("aggregate", len(encode(p_msg)), props))
+    a_js = ((n_agg - n_plt) * packet("aggregate", len(json_plain(a_msg)), props)
+            + n_plt * packet("aggregate", len(json_plain(p_msg)), props))
 
     n_hb = DAY // heartbeat_s
     st = IDENT.stamp(status_body("heartbeat", agent_version="0.1.0", uptime_s=123456.789,
