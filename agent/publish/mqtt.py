@@ -43,7 +43,6 @@ import threading
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import msgpack
@@ -99,20 +98,17 @@ class PublisherConfig:
     @classmethod
     def from_section(cls, sec: Section) -> PublisherConfig:
         """Read the ``[mqtt]`` table; unknown keys and bad values raise ConfigError."""
-        sec.reject_unknown(set(cls.__dataclass_fields__) - {"password"} | {"password_file"})
+        from agent.ops.secrets import read_secret_file, resolve_secret_path
+
+        sec.reject_unknown(set(cls.__dataclass_fields__) | {"password_file"})
         kw: dict[str, Any] = {}
-        base = Path(sec.path).parent if sec.path not in (None, "<defaults>") else Path()
-
-        def resolve(value: str) -> str:  # relative paths are taken from the config's folder
-            return value if Path(value).is_absolute() else str(base / value)
-
         for name in ("host", "client_id", "username", "ca_file", "cert_file", "key_file"):
             if sec.has(name):
                 kw[name] = sec.get(name, str, required=True)
-                if name.endswith("_file") and not os.path.isfile(kw[name]):
-                    raise sec.error(name, f"file not found: {kw[name]}")
-                if name.endswith("_file"):
-                    kw[name] = resolve(kw[name])
+                if name.endswith("_file"):  # relative to the config's folder, or a credential
+                    kw[name] = resolve_secret_path(sec, name, kw[name])
+                    if not os.path.isfile(kw[name]):
+                        raise sec.error(name, f"file not found: {kw[name]}")
         for name in ("port", "keepalive_s", "session_expiry_s", "max_inflight", "max_attempts",
                      "max_packet_bytes"):
             if sec.has(name):
@@ -128,13 +124,12 @@ class PublisherConfig:
             kw["tls"] = sec.get("tls", bool, required=True)
         if sec.has("protocol"):
             kw["protocol"] = sec.choice("protocol", ("5", "3.1.1"))
+        if sec.has("password") and sec.has("password_file"):
+            raise sec.error("password", "give password or password_file, not both")
+        if sec.has("password"):  # allowed, but a file or a credential is better
+            kw["password"] = sec.get("password", str, required=True)
         if sec.has("password_file"):
-            path = resolve(sec.get("password_file", str, required=True))
-            try:
-                with open(path, encoding="utf-8") as fh:
-                    kw["password"] = fh.read().strip()
-            except OSError as exc:
-                raise sec.error("password_file", f"cannot read: {exc.strerror}") from None
+            kw["password"] = read_secret_file(sec, "password_file")
         port = kw.get("port", 8883)
         if not 1 <= port <= 65535:
             raise sec.error("port", "must be 1..65535")

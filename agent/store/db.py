@@ -156,7 +156,11 @@ class Database:
             if not must_exist:
                 path.parent.mkdir(parents=True, exist_ok=True)
             # isolation_level=None: the module issues no implicit BEGIN/COMMIT; we do.
-            conn = sqlite3.connect(target, timeout=busy_timeout_s, isolation_level=None)
+            # check_same_thread=False: a connection may be opened on one thread and handed
+            # to another (the collector opens its store before its writer starts); it is
+            # still never used by two threads at once.
+            conn = sqlite3.connect(target, timeout=busy_timeout_s, isolation_level=None,
+                                   check_same_thread=False)
         except (OSError, sqlite3.Error) as exc:
             raise StoreError(f"store {self.url}: cannot open {path}: "
                              f"{_first_line(exc)}") from None

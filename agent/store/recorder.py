@@ -1079,6 +1079,42 @@ class RecorderStore:
         return self.db.run_in_transaction(
             lambda db: db.execute("DELETE FROM trend WHERE t_utc < ?", (before_utc,)).rowcount)
 
+    def prune_dead_letters(self, before_utc: float) -> int:
+        """Delete dead letters received before ``before_utc`` [s UTC]; returns the count."""
+        return self.db.run_in_transaction(lambda db: db.execute(
+            "DELETE FROM dead_letters WHERE received_at < ?", (before_utc,)).rowcount)
+
+    def prune_captures(self, before_utc: float) -> int:
+        """Delete captures completed before ``before_utc`` [s UTC] and their files (a file
+        shared by an identical capture that is kept stays); returns the rows removed.
+
+        Rows go first, in one transaction; files after the commit, so a crash in between
+        leaves a stray file, never a row without its file.
+        """
+        def work(db: Database) -> list[str]:
+            names = [r[0] for r in db.query(
+                "SELECT file_name FROM captures WHERE completed_at < ?", (before_utc,))]
+            db.execute("DELETE FROM captures WHERE completed_at < ?", (before_utc,))
+            return names
+
+        names = self.db.run_in_transaction(work)
+        for name in set(names):
+            if self.db.query_one("SELECT 1 FROM captures WHERE file_name = ?", (name,)) is None:
+                with suppress(FileNotFoundError):
+                    (self.captures_dir / name).unlink()
+        return len(names)
+
+    def prune_export_queue(self, before_utc: float) -> int:
+        """Delete export rows queued before ``before_utc`` [s UTC]. Only for a store that no
+        exporter drains (the collector calls it when ``[export]`` is not configured)."""
+        return self.db.run_in_transaction(lambda db: db.execute(
+            "DELETE FROM export_queue WHERE created_at < ?", (before_utc,)).rowcount)
+
+    def probe(self) -> None:
+        """Prove the store can take a write transaction now (reconnecting a lost PostgreSQL
+        connection first); raises the driver's error or StoreError when it cannot."""
+        self.db.run_in_transaction(lambda db: db.query_one("SELECT 1"), attempts=1)
+
     # --- queries --------------------------------------------------------------------------
 
     def committed_upto(self, device: str, epoch: str) -> int | None:
