@@ -31,13 +31,17 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         default=10.0,
         help="on exit, wait this long for unacknowledged messages [s]",
     )
-    r.add_argument("--log-level", default="info", choices=("debug", "info", "warning", "error"))
+    r.add_argument("--log-level", default=None, choices=logs.LEVELS,
+                   help="default: $HALFCYCLE_LOG_LEVEL, else [log] level, else info")
     r.set_defaults(func=cmd_edge_run)
 
 
 def cmd_edge_run(args: argparse.Namespace) -> int:
-    logs.configure(args.log_level)
+    logs.configure(logs.resolve_level(args.log_level))
     settings = load_edge_settings(args.config)
+    log_table = settings.raw.get("log", {})
+    level = log_table.get("level") if isinstance(log_table, dict) else None
+    logs.configure(logs.resolve_level(args.log_level, level if isinstance(level, str) else None))
     stop = threading.Event()
     install_signal_handlers(stop)
     result = run_edge(

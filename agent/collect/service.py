@@ -144,9 +144,8 @@ def load_collector_settings(path: str | Path) -> CollectorSettings:
     if stats_interval <= 0:
         raise col.error("stats_interval_s", "must be > 0")
     mqtt_sec = doc.section("mqtt")
-    inline = [f"mqtt.{k}" for k in ("password",) if mqtt_sec.has(k)]
-    inline += [f"export.{k}" for k in ("token",) if doc.section("export").has(k)]
-    warn_if_exposed(p, inline)
+    # The one secret a collector configuration may hold inline (the broker password may not).
+    warn_if_exposed(p, ["export.token"] if doc.section("export").has("token") else [])
     batch_max = ingest.get("batch_max", int, 500)
     if not 1 <= batch_max <= 10000:
         raise ingest.error("batch_max", "must be 1..10000")
