@@ -107,7 +107,7 @@ def test_metrics_bind_must_be_an_address_and_port() -> None:
     from agent.config import ConfigError, Section
 
     for bad in ("9464", "localhost:9464", "127.0.0.1:99999", "127.0.0.1:"):
-        with pytest.raises(ConfigError, match="metrics.bind"):
+        with pytest.raises(ConfigError, match=r"metrics\.bind"):
             MetricsSettings.from_section(Section({"bind": bad}, "c.toml", "metrics"))
     ok = MetricsSettings.from_section(Section({"bind": "[::1]:9464"}, "c.toml", "metrics"))
     assert ok is not None and ok.loopback and ok.port == 9464

@@ -68,4 +68,9 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # `python -m agent.cli.main`: run the imported module's main, so that the UserError the
+    # commands raise (agent.cli.main.UserError) is the class caught there, not a second copy
+    # of this file loaded as __main__.
+    from agent.cli.main import main as _main
+
+    sys.exit(_main())

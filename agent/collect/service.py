@@ -241,6 +241,7 @@ class Collector:
         self._instance = uuid.uuid4().hex
         self._foreign_instances: set[str] = set()
         self._data_sub_mid: int | None = None
+        self._sites: dict[str, str] = {}  # device -> its site (see _check_site)
         self._client = self._make_client()
         self.store: RecorderStore | None = None
         self.is_exporter = False
@@ -435,6 +436,7 @@ class Collector:
                 site, device, _kind = topics.parse_topic(rec.topic)
                 msg = codec.decode(rec.payload, max_bytes=self.settings.max_payload_bytes)
                 check_message(msg, rec.topic, now, self.settings.future_tolerance_s)
+                self._check_site(store, site, device)
             except WireError as exc:
                 reason = f"{exc.code}: {exc.reason}"
                 trusted = self._trusted_envelope(rec, exc) if device is not None else None
@@ -471,6 +473,16 @@ class Collector:
             self.stats.acks_published += 1
         return upto
 
+    def _check_site(self, store: RecorderStore, site: str, device: str) -> None:
+        """A device belongs to one site: the first it was stored under (the broker's ACL binds
+        it at provisioning too). A message under another site is a dead letter."""
+        bound = self._sites.get(device)
+        if bound is None:
+            bound = self._sites[device] = store.device_site(device) or site
+        if bound != site:
+            raise WireError(f"device {device} belongs to site {bound}, not {site}",
+                            "wrong_site")
+
     def _trusted_envelope(self, rec: Received, exc: WireError) -> dict[str, Any] | None:
         """The envelope of a message that failed validation, if it can be trusted.
 
@@ -478,7 +490,7 @@ class Collector:
         broker's ACL lets a device write only its own topics), with a valid epoch and a
         sequence number. A mismatch ("identity") or bytes that are not msgpack are not.
         """
-        if exc.code in ("identity", "not_msgpack", "oversized"):
+        if exc.code in ("identity", "not_msgpack", "oversized", "wrong_site"):
             return None
         try:
             raw = codec.unpack(rec.payload, max_bytes=self.settings.max_payload_bytes)

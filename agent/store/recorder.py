@@ -1126,6 +1126,11 @@ class RecorderStore:
         return {(d, e): int(c) for d, e, c in
                 self.db.query("SELECT device, epoch, committed_upto FROM streams")}
 
+    def device_site(self, device: str) -> str | None:
+        """The site a device's messages have been stored under, or None if never seen."""
+        row = self.db.query_one("SELECT site FROM devices WHERE device = ?", (device,))
+        return str(row[0]) if row else None
+
     def devices(self) -> list[dict[str, Any]]:
         rows = self.db.query("SELECT device, site, model, status, first_seen, last_seen, state,"
                              " state_since FROM devices ORDER BY device")
