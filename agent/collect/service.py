@@ -40,7 +40,7 @@ from agent.ops.retention import Pruner, RetentionSettings
 from agent.ops.secrets import read_secret_file, warn_if_exposed
 from agent.ops.systemd import Notifier
 from agent.publish.mqtt import PublisherConfig
-from agent.store.db import describe_url
+from agent.store.db import describe_url, first_line
 from agent.store.export import Precision
 from agent.store.recorder import Item, RecorderStore
 from agent.wire import codec, topics
@@ -584,7 +584,7 @@ class Collector:
             self.pruner.prune(store)
         except Exception as exc:  # retried at the next interval; the data path goes on
             self.metrics.store_errors.inc()
-            log.error("retention_failed", error=str(exc).strip().splitlines()[0])
+            log.error("retention_failed", error=first_line(exc))
 
     def _step_aside(self, exc: Exception, batch: int) -> None:
         """The store failed a commit: unsubscribe, so the broker hands this collector's share
@@ -598,8 +598,7 @@ class Collector:
         dropped = self._drain_unacked()
         self._rejoin_delay = 1.0
         self._next_rejoin = time.monotonic() + self._rejoin_delay
-        log.error("collector_store_failed", error=str(exc).strip().splitlines()[0]
-                  if str(exc).strip() else type(exc).__name__, batch=batch,
+        log.error("collector_store_failed", error=first_line(exc), batch=batch,
                   dropped_unacked=dropped, action="left the shared group until the store "
                   "commits again")
         self.notifier.status("store failing: out of the shared group, retrying")
@@ -627,8 +626,7 @@ class Collector:
             self.metrics.store_errors.inc()
             self._rejoin_delay = min(60.0, self._rejoin_delay * 2)
             self._next_rejoin = time.monotonic() + self._rejoin_delay
-            log.warning("collector_store_still_failing", error=str(exc).strip().splitlines()[0]
-                        if str(exc).strip() else type(exc).__name__,
+            log.warning("collector_store_still_failing", error=first_line(exc),
                         retry_in_s=self._rejoin_delay)
             return
         self.aside = False

@@ -63,7 +63,7 @@ def describe_url(url: str) -> str:
     return url
 
 
-def _first_line(exc: BaseException) -> str:
+def first_line(exc: BaseException) -> str:
     """The driver's message reduced to its first line, without its "connection failed"
     preamble (psycopg repeats the server address the caller already names)."""
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
@@ -144,7 +144,7 @@ class Database:
                 self._pg = self._connect_pg()
             except psycopg.Error as exc:
                 raise StoreError(f"store {describe_url(url)}: cannot connect: "
-                                 f"{_first_line(exc)}") from None
+                                 f"{first_line(exc)}") from None
         self._sql_cache: dict[str, str] = {}
 
     def _open_sqlite(self, target: str, busy_timeout_s: float,
@@ -163,7 +163,7 @@ class Database:
                                    check_same_thread=False)
         except (OSError, sqlite3.Error) as exc:
             raise StoreError(f"store {self.url}: cannot open {path}: "
-                             f"{_first_line(exc)}") from None
+                             f"{first_line(exc)}") from None
         try:
             _set_wal(conn, busy_timeout_s)
             # FULL: a committed transaction survives power loss (WAL default NORMAL may not).
@@ -173,7 +173,7 @@ class Database:
         except sqlite3.DatabaseError as exc:
             conn.close()
             raise StoreError(f"store {self.url}: {path} is not a usable SQLite database "
-                             f"({_first_line(exc)})") from None
+                             f"({first_line(exc)})") from None
         return conn
 
     def _connect_pg(self) -> Any:

@@ -49,7 +49,7 @@ from agent.collect.outages import (
 )
 from agent.collect.outages import site_outages as _site_outages
 from agent.events.types import Capture
-from agent.store.db import Database, StoreError, describe_url
+from agent.store.db import Database, StoreError, describe_url, first_line
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
 EVENT_STATES = ("open", "closed")
@@ -480,8 +480,7 @@ class RecorderStore:
         except Exception as exc:  # any driver error here means "not a recorder store"
             store.close()
             raise StoreError(f"store {describe_url(url)}: not a halfcycle recorder store "
-                             f"({str(exc).strip().splitlines()[0] if str(exc) else exc})"
-                             ) from None
+                             f"({first_line(exc)})") from None
         if version < 1:
             store.close()
             raise StoreError(f"store {describe_url(url)}: not a halfcycle recorder store "
