@@ -88,11 +88,19 @@ def main() -> int:
         n_events = conn.execute("SELECT COUNT(*) FROM events").fetchone()[0]
         conn.close()
     home_s = args.homes * seconds
+    # Less what an empty store already takes (a page or two per table and index), so the
+    # figures are growth, not SQLite's fixed overhead.
+    with tempfile.TemporaryDirectory() as tmp:
+        from agent.store.recorder import RecorderStore
+
+        RecorderStore(f"sqlite:///{tmp}/empty.db", Path(tmp) / "c").close()
+        empty = table_bytes(Path(tmp) / "empty.db")
+    sizes = {t: max(0, b - empty.get(t, 0)) for t, b in sizes.items()}
     per_week = {t: b / home_s * WEEK_S for t, b in sizes.items()}
     print(f"{args.homes} homes x {args.hours} h simulated, {time.monotonic() - t0:.0f} s wall; "
           f"{issued} messages")
     print(f"{'table':<16} {'bytes':>10} {'MB per home-week':>18}")
-    for t in sorted(sizes, key=lambda k: -sizes[k]):
+    for t in sorted((t for t in sizes if sizes[t]), key=lambda k: -sizes[k]):
         print(f"{t:<16} {sizes[t]:>10} {per_week[t] / 1e6:>18.2f}")
     steady = ("trend", "received", "aggregates", "streams", "devices", "gaps")
     week = sum(per_week.get(t, 0.0) for t in steady)
