@@ -140,3 +140,43 @@ def test_a_folder_without_broker_configuration_is_refused(tmp_path: Path) -> Non
         assert "holds no broker configuration" in done.stderr
         assert len(done.stderr.strip().splitlines()) == 1
     assert not typo.exists()
+
+
+def test_broker_runs_with_the_operators_own_ca(tmp_path: Path) -> None:
+    import ssl
+
+    pki = tmp_path / "pki"  # stands in for the operator's CA: a CA, a server cert and key
+    setup.make_test_certificates(pki)
+    root = tmp_path / "broker"
+    port = free_port()
+    setup.render(root, port=port)
+    password = setup.add_device(root, "unit-1", "elm-court")
+    log = open(tmp_path / "broker.log", "wb")  # noqa: SIM115 - handed to the child
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "broker", "run", "--dir",
+                             str(root), "--port", str(port), "--ca-cert", str(pki / "ca.crt"),
+                             "--cert", str(pki / "server.crt"), "--key", str(pki / "server.key")],
+                            stdout=log, stderr=log, cwd=ROOT)
+    log.close()
+    try:
+        from _mqtt_helpers import port_open
+
+        assert wait_for(lambda: port_open(port), 15), (tmp_path / "broker.log").read_text()
+        conf = (root / "mosquitto.conf").read_text()
+        assert f"cafile {pki / 'ca.crt'}" in conf and not (root / "tls").exists()
+        c = client(port, "unit-1", password)
+        c.tls_set(ca_certs=str(pki / "ca.crt"), cert_reqs=ssl.CERT_REQUIRED)
+        result: list[Any] = []
+        c.on_connect = lambda _c, _u, _f, rc, _p: result.append(rc)
+        c.connect("localhost", port)
+        c.loop_start()
+        try:
+            assert wait_for(lambda: bool(result), 10) and not result[0].is_failure
+        finally:
+            c.disconnect()
+            c.loop_stop()
+    finally:
+        proc.terminate()
+        proc.wait(10)
+    # Only some of the three: refused before anything is rendered or started.
+    done = cli("run", "--dir", str(tmp_path / "b2"), "--ca-cert", str(pki / "ca.crt"))
+    assert done.returncode == 2 and "go together" in done.stderr
