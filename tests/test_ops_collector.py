@@ -15,6 +15,7 @@ import json
 import subprocess
 import sys
 import threading
+import time
 import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -317,3 +318,24 @@ def test_sys_tree_is_readable_by_the_collector_only(broker: Broker) -> None:
     assert not _retained(broker, "$SYS/broker/version", "unit-1", broker.devices["unit-1"])
 
 
+
+
+def test_a_store_that_passes_the_probe_but_fails_commits_backs_off(
+        broker: Broker, tmp_path: Path) -> None:
+    """A full disk, say: the probe's empty transaction goes through, every commit fails. The
+    collector must not flap in and out of the group every second."""
+    col = CollectorThread(write_config(tmp_path, broker.port, broker.collector_password))
+
+    def failing(_store: Any, _batch: Any) -> Any:
+        raise OSError(28, "No space left on device")
+
+    with captured_logs() as out, col:
+        col.collector.process_batch = failing  # type: ignore[method-assign]
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline and col.collector._rejoin_delay < 4.0:
+            if not col.collector.aside:
+                publish_gaps(broker, "unit-1", range(1, 2))
+            time.sleep(0.2)
+    failed = [e for e in events(out) if e["event"] == "collector_store_failed"]
+    assert len(failed) >= 3 and "No space left" in failed[0]["error"]
+    assert col.collector._rejoin_delay >= 4.0  # 1, 2, 4 s: growing, not reset by the probe

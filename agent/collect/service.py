@@ -255,6 +255,7 @@ class Collector:
         self._export_failures_seen = 0
         self._rejoin_delay = 1.0
         self._next_rejoin = 0.0
+        self._healthy = True  # no commit failed since the last one that went through
 
     # --- MQTT side (paho's thread) ----------------------------------------------------------
     def _make_client(self) -> mqtt.Client:
@@ -545,6 +546,7 @@ class Collector:
                 except Exception as exc:  # the store is down: leave the group, do not ack
                     self._step_aside(exc, len(batch))
                     continue  # unacked: redelivered after a reconnect, or resent by the edge
+                self._healthy = True
                 self._acknowledge(batch)
                 self._retention(store)
         finally:
@@ -596,7 +598,10 @@ class Collector:
         self.metrics.stepped_aside.set(1)
         self._client.unsubscribe([f for f, _qos in self._subscriptions()])
         dropped = self._drain_unacked()
-        self._rejoin_delay = 1.0
+        # A store that passes the probe but fails the next commit again (a full disk) keeps
+        # the backoff growing: it restarts at 1 s only after a commit went through.
+        self._rejoin_delay = 1.0 if self._healthy else min(60.0, self._rejoin_delay * 2)
+        self._healthy = False
         self._next_rejoin = time.monotonic() + self._rejoin_delay
         log.error("collector_store_failed", error=first_line(exc), batch=batch,
                   dropped_unacked=dropped, action="left the shared group until the store "
