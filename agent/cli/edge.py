@@ -6,6 +6,7 @@ import argparse
 import threading
 
 from agent import logs
+from agent.config import Section
 from agent.publish.edge import install_signal_handlers, run_edge
 from agent.settings import load_edge_settings
 
@@ -39,9 +40,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 def cmd_edge_run(args: argparse.Namespace) -> int:
     logs.configure(logs.resolve_level(args.log_level))
     settings = load_edge_settings(args.config)
-    log_table = settings.raw.get("log", {})
-    level = log_table.get("level") if isinstance(log_table, dict) else None
-    logs.configure(logs.resolve_level(args.log_level, level if isinstance(level, str) else None))
+    log_sec = Section(settings.raw, settings.path).section("log")
+    log_sec.reject_unknown({"level"})
+    level = log_sec.choice("level", logs.LEVELS) if log_sec.has("level") else None
+    logs.configure(logs.resolve_level(args.log_level, level))
     stop = threading.Event()
     install_signal_handlers(stop)
     result = run_edge(
