@@ -14,8 +14,9 @@ from pathlib import Path
 import msgpack
 import paho.mqtt.client as mqtt
 from _fleet_helpers import CollectorThread, make_fleet
-from _mqtt_helpers import client, wait_for
+from _mqtt_helpers import client, free_port, make_broker, wait_for
 from prometheus_client.parser import text_string_to_metric_families
+from test_ops_collector import publish_gaps, write_config
 
 from agent.ops.metrics import MetricsSettings
 from agent.store.recorder import RecorderStore
@@ -111,3 +112,27 @@ def test_metrics_bind_must_be_an_address_and_port() -> None:
             MetricsSettings.from_section(Section({"bind": bad}, "c.toml", "metrics"))
     ok = MetricsSettings.from_section(Section({"bind": "[::1]:9464"}, "c.toml", "metrics"))
     assert ok is not None and ok.loopback and ok.port == 9464
+
+
+def test_export_backlog_and_failures_when_the_time_series_server_is_down(
+        tmp_path: Path) -> None:
+    b = make_broker(tmp_path)
+    b.add_device("unit-1")
+    b.start()
+    dead_tsdb = free_port()  # nothing listens: every write is refused
+    cfg = write_config(tmp_path, b.port, b.collector_password,
+                       extra=f'[metrics]\nbind = "127.0.0.1:0"\n[export]\n'
+                             f'url = "http://127.0.0.1:{dead_tsdb}"\ntoken = "unused"\n')
+    cfg.write_text(cfg.read_text().replace("[collector]\n", "[collector]\nstats_interval_s = 0.3\n",
+                                           1))
+    try:
+        with CollectorThread(cfg) as col:
+            publish_gaps(b, "unit-1", range(1, 6))
+            address = col.collector.metrics_address
+            assert address is not None
+            assert wait_for(lambda: value(scrape(address), "export_failures_total") >= 1, 30)
+            m = scrape(address)
+    finally:
+        b.stop()
+    assert value(m, "export_backlog_rows") == 5  # the five gap notices wait for the server
+    assert value(m, "messages_committed_total") == 5
