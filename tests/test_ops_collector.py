@@ -339,3 +339,23 @@ def test_a_store_that_passes_the_probe_but_fails_commits_backs_off(
     failed = [e for e in events(out) if e["event"] == "collector_store_failed"]
     assert len(failed) >= 3 and "No space left" in failed[0]["error"]
     assert col.collector._rejoin_delay >= 4.0  # 1, 2, 4 s: growing, not reset by the probe
+
+
+def test_a_restart_is_not_taken_for_a_client_id_clash(broker: Broker, tmp_path: Path) -> None:
+    cfg = write_config(tmp_path, broker.port, broker.collector_password, cid="restarted")
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "collect", "--config",
+                             str(cfg)], cwd=tmp_path, stderr=subprocess.DEVNULL)
+    try:
+        assert wait_for(lambda: " as restarted " in (broker.root / "mosquitto.log").read_text(),
+                        20)
+        time.sleep(0.5)
+    finally:
+        proc.kill()  # a crash, then two ordinary restarts
+        proc.wait(10)
+    with captured_logs() as out:
+        for _ in range(2):
+            with CollectorThread(cfg):
+                time.sleep(0.5)
+    names = [e["event"] for e in events(out)]
+    assert names.count("collector_connected") == 2
+    assert "collector_client_id_in_use" not in names

@@ -20,20 +20,18 @@ import queue
 import ssl
 import threading
 import time
-import uuid
 from collections.abc import Callable
 from contextlib import suppress
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, cast
 
-import msgpack
 import paho.mqtt.client as mqtt
 import structlog
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from agent import __version__
+from agent.collect.presence import Presence
 from agent.config import Section, load_toml
 from agent.ops.metrics import CollectorMetrics, MetricsSettings
 from agent.ops.retention import Pruner, RetentionSettings
@@ -52,11 +50,6 @@ DATA_KINDS = ("summary", "aggregate", "event", "capture", "gap")
 # PostgreSQL advisory lock held by the one collector that runs the time-series exporter.
 EXPORTER_LOCK_KEY = 0x68630001
 STATUS_KIND = "status"
-# The collector's own retained presence (online, and offline as its Last Will); outside the
-# device topics, so no device can write it and no collector subscription matches it.
-PRESENCE_TOPIC = topics.PREFIX + "/_collector/{id}/presence"
-# MQTT 5 DISCONNECT reason 0x8E: another client connected with our client id.
-SESSION_TAKEN_OVER = 0x8E
 # Time fields checked against the collector's clock (messages from the future are
 # quarantined: a device with a wrong clock must not write data into next year).
 _TIME_FIELDS = ("t", "t0", "start_utc", "end_utc", "t_utc")
@@ -236,10 +229,9 @@ class Collector:
         self._generation = 0
         self._connected = threading.Event()
         self._subscribed = threading.Event()
-        self._presence_topic = PRESENCE_TOPIC.format(id=settings.collector_id)
-        # Told apart from another process that uses the same collector id (see _on_presence).
-        self._instance = uuid.uuid4().hex
-        self._foreign_instances: set[str] = set()
+        # Retained presence with a Last Will; also how a client-id clash shows.
+        self.presence = Presence(settings.collector_id, settings.group,
+                                 settings.mqtt.client_id or settings.collector_id, clock)
         self._data_sub_mid: int | None = None
         self._sites: dict[str, str] = {}  # device -> its site (see _check_site)
         self._client = self._make_client()
@@ -249,7 +241,6 @@ class Collector:
         # True while the store fails: the collector has left the shared group (see _step_aside).
         self.aside = False
         self._connect_failures = 0
-        self.takeovers = 0
         self.metrics_address: tuple[str, int] | None = None
         self._last_stats = time.monotonic()
         self._export_failures_seen = 0
@@ -279,19 +270,13 @@ class Collector:
             min_delay=int(max(1, cfg.reconnect_min_s)),
             max_delay=int(max(cfg.reconnect_min_s, cfg.reconnect_max_s)),
         )
-        client.will_set(self._presence_topic, self._presence("offline"), qos=1, retain=True)
+        client.will_set(self.presence.topic, self.presence.body("offline"), qos=1, retain=True)
         client.on_connect = self._on_connect
         client.on_connect_fail = self._on_connect_fail
         client.on_message = self._on_message
         client.on_disconnect = self._on_disconnect
         client.on_subscribe = self._on_subscribe
         return client
-
-    def _presence(self, state: str) -> bytes:
-        """The collector's retained presence (msgpack, like every halfcycle message)."""
-        return msgpack.packb({"v": 1, "type": "collector", "collector": self.settings.collector_id,
-                              "group": self.settings.group, "state": state, "t": self.clock(),
-                              "instance": self._instance, "agent_version": __version__})
 
     def _subscriptions(self) -> list[tuple[str, int]]:
         subs = [(topics.shared_filter(self.settings.group, kind), 1) for kind in DATA_KINDS]
@@ -312,8 +297,9 @@ class Collector:
         self._generation += 1
         self.stats.connects += 1
         self._connect_failures = 0
-        client.publish(self._presence_topic, self._presence("online"), qos=1, retain=True)
-        client.subscribe(self._presence_topic, qos=1)
+        # Subscribe first: the retained presence then shows who held this id before us.
+        client.subscribe(self.presence.topic, qos=1)
+        client.publish(self.presence.topic, self.presence.body("online"), qos=1, retain=True)
         if not self.aside:  # a collector whose store fails stays out of the group
             self._data_sub_mid = client.subscribe(self._subscriptions())[1]
         self._connected.set()
@@ -341,31 +327,10 @@ class Collector:
         elif mid == self._data_sub_mid:
             self._subscribed.set()
 
-    def _on_presence(self, msg: mqtt.MQTTMessage) -> None:
-        """Our presence topic carries another instance's message: when two processes share a
-        client id, each connect takes the session from the other and the broker publishes
-        the Will of the one thrown out -- live, to the one that took over. Seen twice (a
-        crashed previous run of this collector gives it once), that is a clash."""
-        try:
-            body = msgpack.unpackb(msg.payload, raw=False)
-        except (ValueError, msgpack.ExtraData):
-            return
-        other = body.get("instance") if isinstance(body, dict) else None
-        if msg.retain or not isinstance(other, str) or other == self._instance:
-            return
-        self._foreign_instances.add(other)
-        self.takeovers += 1
-        if self.takeovers >= 2:
-            self._client_id_clash()
-
     def _client_id_clash(self) -> None:
         # Say so, and wait longer before taking the session back so the flapping slows down.
+        self.presence.report_clash()
         cfg = self.settings.mqtt
-        log.error("collector_client_id_in_use", client_id=cfg.client_id or
-                  self.settings.collector_id, takeovers=self.takeovers,
-                  hint="another process connects with this collector's client id and the "
-                       "broker keeps closing one of the two; give every collector its own "
-                       "[collector] id (and [mqtt] client_id, if set)")
         self._client.reconnect_delay_set(min_delay=int(max(10, cfg.reconnect_max_s)),
                                          max_delay=int(max(60, cfg.reconnect_max_s)))
 
@@ -375,15 +340,17 @@ class Collector:
         self._connected.clear()
         self._subscribed.clear()
         self.metrics.connected.set(0)
-        if getattr(reason, "value", None) == SESSION_TAKEN_OVER:  # brokers that say so
-            self.takeovers += 1
+        if self.presence.disconnected(getattr(reason, "value", None)):
             self._client_id_clash()
             return
         log.warning("collector_disconnected", reason=str(reason))
 
-    def _on_message(self, _c: mqtt.Client, _u: Any, msg: mqtt.MQTTMessage) -> None:
-        if msg.topic == self._presence_topic:
-            self._on_presence(msg)
+    def _on_message(self, c: mqtt.Client, _u: Any, msg: mqtt.MQTTMessage) -> None:
+        if msg.topic == self.presence.topic:
+            if msg.qos:
+                c.ack(msg.mid, msg.qos)  # manual acknowledgement: nothing to commit here
+            if self.presence.seen(bytes(msg.payload)):
+                self._client_id_clash()
             return
         self._queue.put(
             Received(
@@ -733,7 +700,7 @@ class Collector:
                 exporter.join(timeout=30)
             if self._connected.is_set():  # a clean DISCONNECT suppresses the Will
                 with suppress(RuntimeError, ValueError):
-                    self._client.publish(self._presence_topic, self._presence("offline"),
+                    self._client.publish(self.presence.topic, self.presence.body("offline"),
                                          qos=1, retain=True).wait_for_publish(2.0)
             self._client.disconnect()
             self._client.loop_stop()
