@@ -10,7 +10,8 @@
 [calibration]   # file = "calibration.toml" (written by `halfcycle calibrate`)
 [state]         # dir = "/var/lib/halfcycle" (outbox, open-event journal)
 [summary]       # seconds = 60 (per-second records batched per summary message)
-[mqtt]          # broker connection, see agent.publish.config
+[mqtt]          # broker connection, see agent.publish.config (required by `edge run`)
+[log]           # level = "info" (the command line and $HALFCYCLE_LOG_LEVEL come first)
 ```
 
 Relative paths are taken from the configuration file's folder. Every error names the file
@@ -32,7 +33,7 @@ from agent.pipeline import CaptureSettings
 from agent.site import Site, check_identifier
 
 SECTIONS = {"site", "source", "events", "rvc", "capture", "calibration", "state", "summary",
-            "mqtt"}
+            "mqtt", "log"}
 
 
 @dataclass

@@ -69,6 +69,7 @@ def test_add_device_rejects_wildcards_and_reserved(tmp_path: Path) -> None:
 
 
 def test_cli_add_device_prints_password_once(tmp_path: Path) -> None:
+    setup.render(tmp_path, port=free_port())
     out = subprocess.run([sys.executable, "-m", "agent.cli.broker", "broker", "add-device",
                           "dev-cli", "--dir", str(tmp_path)], capture_output=True, text=True,
                          cwd=ROOT, timeout=60, check=True)

@@ -6,6 +6,7 @@ A broker directory holds::
     acl                 rendered ACL
     passwd              user:hash lines (mode 0600), Mosquitto 2.0 PBKDF2-SHA512 format
     collector.password  the collector's generated password (mode 0600; the collector reads it)
+    devices.csv         the device registry: device, site, added_utc (one row per device)
     data/               persistence
     tls/                test CA, server and client certificates (only with ``tls=True``)
 
@@ -16,8 +17,10 @@ and shown once. They are never logged.
 from __future__ import annotations
 
 import base64
+import csv
 import getpass
 import hashlib
+import io
 import os
 import pwd
 import secrets
@@ -25,7 +28,9 @@ import shutil
 import signal
 import string
 import subprocess
+import time
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 
 from agent import resources
@@ -111,6 +116,10 @@ class BrokerDir:
         return self.root / "collector.password"
 
     @property
+    def registry(self) -> Path:
+        return self.root / "devices.csv"
+
+    @property
     def pid_file(self) -> Path:
         return self.root / "mosquitto.pid"
 
@@ -122,22 +131,158 @@ class BrokerDir:
         return self.collector_password_file.read_text(encoding="utf-8").strip()
 
 
-def add_device(root: str | Path, device: str) -> str:
-    """Create (or replace) the credentials of ``device``; returns its new password.
+@dataclass(frozen=True)
+class Device:
+    """One provisioned device: its id (= broker user name) and the site it may publish
+    under (``None``: any site, for devices added before sites were bound)."""
 
-    A running broker started from this directory is told to reload (SIGHUP).
-    """
+    device: str
+    site: str | None
+    added_utc: str = ""
+
+
+ANY_SITE = "+"
+
+
+def broker_dir(root: str | Path) -> BrokerDir:
+    """A rendered broker directory; BrokerSetupError when ``root`` holds no broker
+    configuration (a mistyped ``--dir`` must not start a new password file)."""
+    bdir = BrokerDir(Path(root))
+    if not bdir.conf.is_file():
+        raise BrokerSetupError(f"{bdir.root} holds no broker configuration (no "
+                               "mosquitto.conf): check --dir, or render one with "
+                               f"`halfcycle broker run --dir {bdir.root} --render-only`")
+    return bdir
+
+
+def _check_device_id(device: str) -> None:
     if not topics.valid_id(device):
         raise BrokerSetupError(f"device id {device!r}: use letters, digits, '_', '.', '-' "
                                "(at most 64, no MQTT wildcards)")
     if device in topics.RESERVED_DEVICE_IDS:
         raise BrokerSetupError(f"device id {device!r} is reserved")
+
+
+def list_devices(root: str | Path) -> list[Device]:
+    """The registry, plus any device in the password file that it does not list (added by
+    an older version: bound to no site), sorted by id."""
     bdir = BrokerDir(Path(root))
-    bdir.root.mkdir(parents=True, exist_ok=True)
-    password = generate_password()
-    set_password(bdir.passwd, device, password)
+    found: dict[str, Device] = {}
+    if bdir.registry.exists():
+        for row in csv.DictReader(io.StringIO(bdir.registry.read_text(encoding="utf-8"))):
+            site = (row.get("site") or "").strip()
+            found[row["device"]] = Device(row["device"], None if site in ("", ANY_SITE)
+                                          else site, row.get("added_utc") or "")
+    for user in read_passwd(bdir.passwd):
+        if user != COLLECTOR_USER and user not in found:
+            found[user] = Device(user, None)
+    return [found[k] for k in sorted(found)]
+
+
+def _write_registry(bdir: BrokerDir, devices: list[Device]) -> None:
+    out = io.StringIO()
+    w = csv.writer(out, lineterminator="\n")
+    w.writerow(["device", "site", "added_utc"])
+    for d in sorted(devices, key=lambda d: d.device):
+        w.writerow([d.device, d.site or "", d.added_utc])
+    _write_private(bdir.registry, out.getvalue())
+
+
+def add_device(root: str | Path, device: str, site: str | None = None) -> str:
+    """Create (or replace) the credentials of ``device``, bound to ``site`` (``None``: any
+    site); returns its new password. The ACL is rewritten and a broker running from this
+    directory is told to reload (SIGHUP)."""
+    return add_devices(root, [(device, site)])[device]
+
+
+def add_devices(root: str | Path, devices: list[tuple[str, str | None]]) -> dict[str, str]:
+    """Add several devices in one pass (one ACL rewrite, one reload); all ids are checked
+    before anything is written."""
+    for device, site in devices:
+        _check_device_id(device)
+        if site is not None and not topics.valid_id(site):
+            raise BrokerSetupError(f"site id {site!r} (device {device}): use letters, digits, "
+                                   "'_', '.', '-' (at most 64, no MQTT wildcards)")
+    ids = [d for d, _ in devices]
+    if len(set(ids)) != len(ids):
+        raise BrokerSetupError("a device id appears twice: " + ", ".join(
+            sorted({d for d in ids if ids.count(d) > 1})))
+    bdir = broker_dir(root)
+    users = read_passwd(bdir.passwd)
+    registry = {d.device: d for d in list_devices(bdir.root)}
+    stamp = datetime.fromtimestamp(time.time(), UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    passwords: dict[str, str] = {}
+    for device, site in devices:
+        passwords[device] = generate_password()
+        users[device] = hash_password(passwords[device])
+        registry[device] = Device(device, site, stamp)
+    _write_private(bdir.passwd, "".join(f"{u}:{h}\n" for u, h in users.items()))
+    _write_registry(bdir, list(registry.values()))
+    write_acl(bdir)
     _reload(bdir)
-    return password
+    return passwords
+
+
+def revoke_device(root: str | Path, device: str) -> None:
+    """Remove ``device``'s credentials and ACL entries; the broker reloads. BrokerSetupError
+    when no such device is provisioned."""
+    bdir = broker_dir(root)
+    users = read_passwd(bdir.passwd)
+    registry = {d.device: d for d in list_devices(bdir.root)}
+    if device not in users and device not in registry:
+        raise BrokerSetupError(f"no device {device!r} in {bdir.root}")
+    users.pop(device, None)
+    registry.pop(device, None)
+    _write_private(bdir.passwd, "".join(f"{u}:{h}\n" for u, h in users.items()))
+    _write_registry(bdir, list(registry.values()))
+    write_acl(bdir)
+    _reload(bdir)
+
+
+def read_device_csv(path: str | Path) -> list[tuple[str, str | None]]:
+    """``device,site`` rows (a header line naming them is required; more columns are
+    ignored) for ``devices import``; BrokerSetupError naming the line on a bad row."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise BrokerSetupError(f"{p}: cannot read: {exc.strerror}") from None
+    reader = csv.DictReader(io.StringIO(text))
+    if not reader.fieldnames or not {"device", "site"} <= {f.strip() for f in
+                                                           reader.fieldnames}:
+        raise BrokerSetupError(f"{p}: line 1: need a header with the columns device,site")
+    out: list[tuple[str, str | None]] = []
+    for row in reader:
+        row = {k.strip(): (v or "").strip() for k, v in row.items() if k}
+        if not row.get("device"):
+            raise BrokerSetupError(f"{p}: line {reader.line_num}: no device id")
+        if not row.get("site"):
+            raise BrokerSetupError(f"{p}: line {reader.line_num}: device {row['device']} "
+                                   "has no site")
+        out.append((row["device"], row["site"]))
+    if not out:
+        raise BrokerSetupError(f"{p}: no devices")
+    return out
+
+
+def device_acl_block(dev: Device) -> str:
+    """The ACL lines of one device: it writes only its own message kinds under its own
+    site, and reads only its own acknowledgement. Listing the kinds (rather than
+    ``.../{device}/#`` with a deny line) is needed because "deny" in Mosquitto removes read
+    access too."""
+    site = dev.site or ANY_SITE
+    lines = [f"user {dev.device}"]
+    lines += [f"topic write hc/v1/{site}/{dev.device}/{kind}/#" for kind in topics.DEVICE_KINDS]
+    lines.append(f"topic read hc/v1/{site}/{dev.device}/ack")
+    return "\n".join(lines)
+
+
+def write_acl(bdir: BrokerDir) -> None:
+    template_dir = resources.broker_config_dir()
+    blocks = "\n\n".join(device_acl_block(d) for d in list_devices(bdir.root))
+    acl = string.Template((template_dir / "acl.template").read_text()).substitute(
+        collector_user=COLLECTOR_USER, device_blocks=blocks)
+    _write_private(bdir.acl, acl)
 
 
 def _reload(bdir: BrokerDir) -> None:
@@ -148,12 +293,30 @@ def _reload(bdir: BrokerDir) -> None:
         pass  # no broker running from this directory
 
 
+@dataclass(frozen=True)
+class OperatorCertificates:
+    """The operator's own CA certificate and the broker's certificate and key (PEM)."""
+
+    ca_cert: Path
+    cert: Path
+    key: Path
+
+    def check(self) -> None:
+        for name, path in (("--ca-cert", self.ca_cert), ("--cert", self.cert),
+                           ("--key", self.key)):
+            if not path.is_file():
+                raise BrokerSetupError(f"{name} {path}: file not found")
+
+
 def render(root: str | Path, *, port: int = 8883, bind_address: str = "127.0.0.1",
            tls: bool = False, user: str | None = None,
-           max_packet_size: int = DEFAULT_MAX_PACKET, log_dest: str = "stderr") -> BrokerDir:
+           max_packet_size: int = DEFAULT_MAX_PACKET, log_dest: str = "stderr",
+           certificates: OperatorCertificates | None = None) -> BrokerDir:
     """Render configuration, ACL and collector credentials into ``root``.
 
-    Existing passwords and certificates are kept, so rendering again is safe.
+    Existing passwords, devices and certificates are kept, so rendering again is safe.
+    ``certificates``: the operator's own CA and broker certificate (TLS on); without them
+    ``tls=True`` generates a throw-away test CA.
     """
     bdir = BrokerDir(Path(root).resolve())
     bdir.root.mkdir(parents=True, exist_ok=True)
@@ -166,15 +329,17 @@ def render(root: str | Path, *, port: int = 8883, bind_address: str = "127.0.0.1
         set_password(bdir.passwd, COLLECTOR_USER, password)
         _write_private(bdir.collector_password_file, password + "\n")
     tls_block = ""
-    if tls:
+    if certificates is not None:
+        certificates.check()
+        ca, cert, key = (certificates.ca_cert.resolve(), certificates.cert.resolve(),
+                         certificates.key.resolve())
+    elif tls:
         make_test_certificates(bdir.tls_dir)
-        tls_block = "\n".join([
-            f"cafile {bdir.tls_dir / 'ca.crt'}",
-            f"certfile {bdir.tls_dir / 'server.crt'}",
-            f"keyfile {bdir.tls_dir / 'server.key'}",
-            "tls_version tlsv1.2",
-            "require_certificate false",
-        ])
+        ca, cert, key = (bdir.tls_dir / "ca.crt", bdir.tls_dir / "server.crt",
+                         bdir.tls_dir / "server.key")
+    if tls or certificates is not None:
+        tls_block = "\n".join([f"cafile {ca}", f"certfile {cert}", f"keyfile {key}",
+                               "tls_version tlsv1.2", "require_certificate false"])
     template_dir = resources.broker_config_dir()
     conf = string.Template((template_dir / "mosquitto.conf.template").read_text()).substitute(
         password_file=bdir.passwd, acl_file=bdir.acl, user=user, pid_file=bdir.pid_file,
@@ -182,11 +347,8 @@ def render(root: str | Path, *, port: int = 8883, bind_address: str = "127.0.0.1
         max_packet_size=max_packet_size, log_dest=log_dest, port=port,
         bind_address=bind_address, tls_block=tls_block,
     )
-    patterns = "\n".join(f"pattern write hc/v1/+/%u/{kind}/#" for kind in topics.DEVICE_KINDS)
-    acl = string.Template((template_dir / "acl.template").read_text()).substitute(
-        collector_user=COLLECTOR_USER, device_patterns=patterns)
     bdir.conf.write_text(conf, encoding="utf-8")
-    _write_private(bdir.acl, acl)
+    write_acl(bdir)
     _hand_over(bdir, user)
     return bdir
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+from datetime import UTC, datetime
 from pathlib import Path
 
 from agent.cli.main import UserError
@@ -34,23 +35,26 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 def _open(args: argparse.Namespace) -> RecorderStore:
-    return RecorderStore(args.store, Path(args.captures), migrate=False)
+    return RecorderStore.open_existing(args.store, Path(args.captures))
 
 
 def cmd_list(args: argparse.Namespace) -> int:
     store = _open(args)
     try:
-        rows = store.captures(args.event)
+        rows = store.captures_by_time(args.event)
     finally:
         store.close()
     if args.json:
         print(json.dumps([{k: (str(v) if isinstance(v, Path) else v) for k, v in r.items()}
                           for r in rows]))
         return 0
-    print(f"{'capture id':<34} {'event id':<34} {'device':<16} {'trigger':<7} {'bytes':>8}")
+    print(f"{'trigger (UTC)':<24} {'capture id':<34} {'event id':<34} {'type':<12} "
+          f"{'device':<16} {'at':<5} {'bytes':>8}")
     for r in rows:
-        print(f"{r['capture_id']:<34} {r['event_id']:<34} {r['device']:<16} "
-              f"{r['fields'].get('trigger', '-'):<7} {r['size']:>8}")
+        when = datetime.fromtimestamp(r["trigger_utc"], UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+        print(f"{when[:23] + 'Z':<24} {r['capture_id']:<34} {r['event_id'] or '-':<34} "
+              f"{r['event_kind'] or '-':<12} {r['device']:<16} "
+              f"{r['fields'].get('trigger', '-'):<5} {r['size']:>8}")
     return 0
 
 

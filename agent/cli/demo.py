@@ -311,7 +311,7 @@ class DemoRun:
         port = free_port()
         broker_dir = self.root / "broker"
         setup.render(broker_dir, port=port)
-        passwords = {d: setup.add_device(broker_dir, d) for d in devices}
+        passwords = {d: setup.add_device(broker_dir, d, self.street.site) for d in devices}
         collector_thread: threading.Thread | None = None
         collector_stop = threading.Event()
         try:

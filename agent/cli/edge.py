@@ -6,6 +6,7 @@ import argparse
 import threading
 
 from agent import logs
+from agent.config import Section
 from agent.publish.edge import install_signal_handlers, run_edge
 from agent.settings import load_edge_settings
 
@@ -31,13 +32,18 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         default=10.0,
         help="on exit, wait this long for unacknowledged messages [s]",
     )
-    r.add_argument("--log-level", default="info", choices=("debug", "info", "warning", "error"))
+    r.add_argument("--log-level", default=None, choices=logs.LEVELS,
+                   help="default: $HALFCYCLE_LOG_LEVEL, else [log] level, else info")
     r.set_defaults(func=cmd_edge_run)
 
 
 def cmd_edge_run(args: argparse.Namespace) -> int:
-    logs.configure(args.log_level)
+    logs.configure(logs.resolve_level(args.log_level))
     settings = load_edge_settings(args.config)
+    log_sec = Section(settings.raw, settings.path).section("log")
+    log_sec.reject_unknown({"level"})
+    level = log_sec.choice("level", logs.LEVELS) if log_sec.has("level") else None
+    logs.configure(logs.resolve_level(args.log_level, level))
     stop = threading.Event()
     install_signal_handlers(stop)
     result = run_edge(

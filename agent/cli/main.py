@@ -10,11 +10,13 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from collections.abc import Sequence
 
 from agent import __version__
 from agent.config import ConfigError
+from agent.store.db import StoreError
 
 # Command modules, in the order they appear in --help.
 COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "demo")
@@ -49,13 +51,26 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help()
         return 2
     try:
-        return int(args.func(args) or 0)
-    except (UserError, ConfigError) as exc:
+        code = int(args.func(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handler below
+        return code
+    except (UserError, ConfigError, StoreError) as exc:
         print(f"halfcycle {args.command}: error: {exc}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # The reader went away (`| head`): not an error worth a traceback. Point stdout at
+        # /dev/null so the interpreter's own flush at exit does not raise again.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         return 130
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # `python -m agent.cli.main`: run the imported module's main, so that the UserError the
+    # commands raise (agent.cli.main.UserError) is the class caught there, not a second copy
+    # of this file loaded as __main__.
+    from agent.cli.main import main as _main
+
+    sys.exit(_main())

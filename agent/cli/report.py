@@ -66,30 +66,12 @@ def parse_when(text: str, option: str, now: float) -> float:
 
 
 def open_store(url: str, captures: str | None) -> RecorderStore:
-    """Open an existing store without changing it; UserError when it is not one."""
+    """Open an existing store without changing it; StoreError (one line) when it is not one."""
     if url.startswith("sqlite:///"):
-        path = Path(url[len("sqlite:///"):])
-        if not path.is_file():
-            raise UserError(f"--store {url}: no SQLite file at {path}")
-        default_caps = path.parent / "captures"
-    elif url.startswith(("postgresql://", "postgres://")):
-        default_caps = Path("captures")
+        default_caps = Path(url[len("sqlite:///"):]).parent / "captures"
     else:
-        raise UserError(f"--store {url}: must start with sqlite:/// or postgresql://")
-    try:
-        store = RecorderStore(url, captures or default_caps, migrate=False)
-    except (StoreError, OSError) as exc:
-        raise UserError(f"--store {url}: {exc}") from None
-    try:
-        row = store.db.query_one("SELECT MAX(version) FROM schema_version")  # read-only
-        version = int(row[0]) if row and row[0] is not None else 0
-    except Exception as exc:  # any driver error means "not a recorder store"
-        store.close()
-        raise UserError(f"--store {url}: not a halfcycle recorder store ({exc})") from None
-    if version < 1:
-        store.close()
-        raise UserError(f"--store {url}: not a halfcycle recorder store (no schema)")
-    return store
+        default_caps = Path("captures")
+    return RecorderStore.open_existing(url, captures or default_caps)
 
 
 def _json_safe(value: Any) -> Any:

@@ -29,6 +29,7 @@ from agent.events.classify import classify_event
 from agent.events.types import Event
 from agent.measurement.harmonics import max_harmonic_order
 from agent.measurement.types import BasicIntervals, HalfCycleRms, MeasurementOutput
+from agent.ops.systemd import Notifier
 from agent.pipeline import Frame, edge_stages, push
 from agent.publish import topics
 from agent.publish.mqtt import Publisher, PublisherConfig
@@ -422,6 +423,12 @@ def run_edge(
     the publisher gets ``drain_timeout_s`` to deliver what is still unacknowledged.
     """
     stop = stop or threading.Event()
+    if not settings.mqtt.data:
+        from agent.config import ConfigError
+
+        raise ConfigError(settings.path, "mqtt", "required table is missing: the agent needs "
+                          "its broker (host, port, tls, ca_file, password_file); see "
+                          "deploy/edge.example.toml")
     mqtt_config = PublisherConfig.from_section(settings.mqtt)
     settings.state_dir.mkdir(parents=True, exist_ok=True)
     site = settings.site
@@ -488,8 +495,13 @@ def run_edge(
     t_start = time.monotonic()
     live = isinstance(timebase, ClockModel)
     planned = False
+    # systemd Type=notify: ready once measuring into the outbox (the broker may be away);
+    # watchdog pings from the measurement loop, so a stalled source or pipeline is restarted.
+    notifier = Notifier()
+    notifier.ready(f"measuring {site.site_id}/{site.device_id} into {outbox_path}")
     try:
         for block in source.blocks():
+            notifier.watchdog()
             if live:
                 assert isinstance(timebase, ClockModel)
                 timebase.observe(block.end_index, block.wall_time)
@@ -514,6 +526,7 @@ def run_edge(
     finally:
         source.close()
         # Let the publisher deliver what is committed, within bounds; the outbox keeps the rest.
+        notifier.stopping()
         deadline = time.monotonic() + drain_timeout_s
         while outbox.pending_count() and time.monotonic() < deadline and thread.is_alive():
             time.sleep(0.1)

@@ -43,7 +43,6 @@ import threading
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import msgpack
@@ -62,6 +61,9 @@ log = structlog.get_logger("halfcycle.publish")
 
 # MQTT 5 reason codes that mean "try again later", not "never" (MQTT 5.0 section 2.4).
 TRANSIENT_REASONS = frozenset({0x89, 0x91, 0x97})
+# CONNACK: bad user name or password, not authorized (MQTT 5.0 section 3.2.2.2; paho maps the
+# MQTT 3.1.1 return codes 4 and 5 onto these).
+CREDENTIAL_REASONS = frozenset({0x86, 0x87})
 
 
 @dataclass(frozen=True)
@@ -99,20 +101,18 @@ class PublisherConfig:
     @classmethod
     def from_section(cls, sec: Section) -> PublisherConfig:
         """Read the ``[mqtt]`` table; unknown keys and bad values raise ConfigError."""
+        from agent.ops.secrets import read_secret_file, resolve_secret_path
+
+        # No inline password: it belongs in a file of its own or a systemd credential.
         sec.reject_unknown(set(cls.__dataclass_fields__) - {"password"} | {"password_file"})
         kw: dict[str, Any] = {}
-        base = Path(sec.path).parent if sec.path not in (None, "<defaults>") else Path()
-
-        def resolve(value: str) -> str:  # relative paths are taken from the config's folder
-            return value if Path(value).is_absolute() else str(base / value)
-
         for name in ("host", "client_id", "username", "ca_file", "cert_file", "key_file"):
             if sec.has(name):
                 kw[name] = sec.get(name, str, required=True)
-                if name.endswith("_file") and not os.path.isfile(kw[name]):
-                    raise sec.error(name, f"file not found: {kw[name]}")
-                if name.endswith("_file"):
-                    kw[name] = resolve(kw[name])
+                if name.endswith("_file"):  # relative to the config's folder, or a credential
+                    kw[name] = resolve_secret_path(sec, name, kw[name])
+                    if not os.path.isfile(kw[name]):
+                        raise sec.error(name, f"file not found: {kw[name]}")
         for name in ("port", "keepalive_s", "session_expiry_s", "max_inflight", "max_attempts",
                      "max_packet_bytes"):
             if sec.has(name):
@@ -129,12 +129,7 @@ class PublisherConfig:
         if sec.has("protocol"):
             kw["protocol"] = sec.choice("protocol", ("5", "3.1.1"))
         if sec.has("password_file"):
-            path = resolve(sec.get("password_file", str, required=True))
-            try:
-                with open(path, encoding="utf-8") as fh:
-                    kw["password"] = fh.read().strip()
-            except OSError as exc:
-                raise sec.error("password_file", f"cannot read: {exc.strerror}") from None
+            kw["password"] = read_secret_file(sec, "password_file")
         port = kw.get("port", 8883)
         if not 1 <= port <= 65535:
             raise sec.error("port", "must be 1..65535")
@@ -200,6 +195,7 @@ class Publisher:
         self._connecting_since: float | None = None
         self._next_attempt = 0.0
         self._failures = 0
+        self._refusal: str | None = None  # cause already reported (see _refused)
         self._server_max_packet: int | None = None
         self._last_resend_check = 0.0
         self._overdue_backlog = False
@@ -274,8 +270,27 @@ class Publisher:
                     self._client.connect(cfg.host, cfg.port, cfg.keepalive_s)
             else:
                 self._client.reconnect()
+        except ssl.SSLCertVerificationError as exc:
+            self._refused("certificate", f"the broker's certificate was not accepted: "
+                          f"{exc.verify_message or exc}", ca_file=cfg.ca_file,
+                          hint="check [mqtt] ca_file (the CA that signed the broker's "
+                               "certificate) and that host matches the certificate's name")
+            self._connect_failed(now, f"certificate: {exc.verify_message or exc}")
         except (OSError, ValueError, ssl.SSLError) as exc:
             self._connect_failed(now, f"{type(exc).__name__}: {exc}")
+
+    def _refused(self, cause: str, message: str, **fields: Any) -> None:
+        """Say once, as an error, that the broker refused us for a reason that retrying will
+        not cure (credentials, certificate); repeats go to debug until a connect succeeds.
+        The agent keeps measuring into the outbox meanwhile and keeps retrying with backoff
+        (an operator may be fixing the password file right now)."""
+        if self._refusal == cause:
+            log.debug("mqtt_connect_refused", cause=cause)
+            return
+        self._refusal = cause
+        log.error("mqtt_connect_refused", cause=cause, message=message, host=self.config.host,
+                  port=self.config.port, user=self.config.username or self.outbox.device,
+                  **fields)
 
     def _connect_failed(self, now: float, reason: str) -> None:
         self._connecting_since = None
@@ -284,19 +299,26 @@ class Publisher:
                 self.config.reconnect_min_s * 2 ** min(self._failures - 1, 30))
         delay = d / 2 + self._rng.uniform(0, d / 2)
         self._next_attempt = now + delay
-        log.warning("mqtt_connect_failed", host=self.config.host, port=self.config.port,
-                    reason=reason, retry_in_s=round(delay, 2), failures=self._failures)
+        (log.debug if self._refusal else log.warning)(
+            "mqtt_connect_failed", host=self.config.host, port=self.config.port,
+            reason=reason, retry_in_s=round(delay, 2), failures=self._failures)
 
     # -------------------------------------------------------------- callbacks
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any,
                     reason_code: Any, properties: Any) -> None:
         now = self._now()
         if reason_code.is_failure:
-            # paho closes the socket; on_disconnect follows. Bad credentials are retried with
-            # backoff: an operator may be fixing the password file right now.
-            log.error("mqtt_connect_refused", reason=str(reason_code))
+            # paho closes the socket; on_disconnect follows. Retried with backoff.
+            if int(getattr(reason_code, "value", 0)) in CREDENTIAL_REASONS:
+                self._refused("credentials", f"the broker refused user "
+                              f"{self.config.username or self.outbox.device!r}: {reason_code}",
+                              hint="check [mqtt] username and password_file against the "
+                                   "broker's device list (halfcycle broker devices list)")
+            else:
+                log.error("mqtt_connect_refused", cause="broker", reason=str(reason_code))
             self._connect_failed(now, f"CONNACK {reason_code}")
             return
+        self._refusal = None
         self._connected = True
         self._connecting_since = None
         self.stats.connects += 1
@@ -331,7 +353,7 @@ class Publisher:
         up_for = now - (self.stats.last_connect_at or now)
         if was_connected and up_for >= max(30.0, 2 * self.config.keepalive_s):
             self._failures = 0  # a connection that held resets the backoff
-        (log.info if self._closing else log.warning)(
+        (log.info if self._closing else log.debug if self._refusal else log.warning)(
             "mqtt_disconnected", reason=str(reason_code), was_connected=was_connected,
             up_for_s=round(up_for, 2), inflight_dropped=inflight)
         if self._closing:

@@ -43,7 +43,33 @@ _MIGRATION_LOCK_KEY = 0x6863_5354  # "hcST"
 
 
 class StoreError(RuntimeError):
-    """A recorder-store problem: bad URL, missing driver, unsupported schema."""
+    """A recorder-store problem: bad URL, missing driver, unreachable server, not a store.
+
+    Its message is one line naming the store (never its password) and what failed; the CLI
+    prints it as is and exits with status 2.
+    """
+
+
+def describe_url(url: str) -> str:
+    """The store URL without any password (for messages and logs)."""
+    if url.startswith(("postgresql://", "postgres://")):
+        from urllib.parse import urlsplit
+
+        parts = urlsplit(url)
+        if parts.password is not None:
+            host = parts.netloc.rpartition("@")[2]
+            user = parts.username or ""
+            return url.replace(parts.netloc, f"{user}:***@{host}", 1)
+    return url
+
+
+def first_line(exc: BaseException) -> str:
+    """The driver's message reduced to its first line, without its "connection failed"
+    preamble (psycopg repeats the server address the caller already names)."""
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    for noise in ("connection failed: ",):
+        text = text.replace(noise, "")
+    return " ".join(text.split())
 
 
 def parse_url(url: str) -> tuple[Dialect, str]:
@@ -89,20 +115,16 @@ class Database:
     ``busy_timeout_s`` bounds how long a writer waits for another writer's lock.
     """
 
-    def __init__(self, url: str, *, busy_timeout_s: float = 30.0) -> None:
+    def __init__(self, url: str, *, busy_timeout_s: float = 30.0,
+                 must_exist: bool = False) -> None:
+        """``must_exist``: open an existing SQLite file only (readers such as ``report`` and
+        ``capture`` must not create an empty store where a path was mistyped)."""
         self.url = url
         self.dialect, target = parse_url(url)
         self._in_tx = False
         if self.dialect == "sqlite":
-            Path(target).parent.mkdir(parents=True, exist_ok=True)
-            # isolation_level=None: the module issues no implicit BEGIN/COMMIT; we do.
-            conn = sqlite3.connect(target, timeout=busy_timeout_s, isolation_level=None)
-            _set_wal(conn, busy_timeout_s)
-            # FULL: a committed transaction survives power loss (WAL default NORMAL may not).
-            conn.execute("PRAGMA synchronous=FULL")
-            conn.execute(f"PRAGMA busy_timeout={int(busy_timeout_s * 1000)}")
-            conn.execute("PRAGMA foreign_keys=ON")
-            self._sqlite: sqlite3.Connection | None = conn
+            self._sqlite: sqlite3.Connection | None = self._open_sqlite(
+                target, busy_timeout_s, must_exist)
             self._pg: Any = None
             self.data_errors: tuple[type[Exception], ...] = (sqlite3.DataError,
                                                               sqlite3.IntegrityError)
@@ -118,13 +140,46 @@ class Database:
             self.data_errors = (psycopg.DataError, psycopg.IntegrityError)
             self._pg_target = target
             self._lock_timeout_ms = int(busy_timeout_s * 1000)
-            self._pg = self._connect_pg()
+            try:
+                self._pg = self._connect_pg()
+            except psycopg.Error as exc:
+                raise StoreError(f"store {describe_url(url)}: cannot connect: "
+                                 f"{first_line(exc)}") from None
         self._sql_cache: dict[str, str] = {}
+
+    def _open_sqlite(self, target: str, busy_timeout_s: float,
+                     must_exist: bool) -> sqlite3.Connection:
+        path = Path(target)
+        if must_exist and not path.is_file():
+            raise StoreError(f"store {self.url}: no SQLite file at {path}")
+        try:
+            if not must_exist:
+                path.parent.mkdir(parents=True, exist_ok=True)
+            # isolation_level=None: the module issues no implicit BEGIN/COMMIT; we do.
+            # check_same_thread=False: a connection may be opened on one thread and handed
+            # to another (the collector opens its store before its writer starts); it is
+            # still never used by two threads at once.
+            conn = sqlite3.connect(target, timeout=busy_timeout_s, isolation_level=None,
+                                   check_same_thread=False)
+        except (OSError, sqlite3.Error) as exc:
+            raise StoreError(f"store {self.url}: cannot open {path}: "
+                             f"{first_line(exc)}") from None
+        try:
+            _set_wal(conn, busy_timeout_s)
+            # FULL: a committed transaction survives power loss (WAL default NORMAL may not).
+            conn.execute("PRAGMA synchronous=FULL")
+            conn.execute(f"PRAGMA busy_timeout={int(busy_timeout_s * 1000)}")
+            conn.execute("PRAGMA foreign_keys=ON")
+        except sqlite3.DatabaseError as exc:
+            conn.close()
+            raise StoreError(f"store {self.url}: {path} is not a usable SQLite database "
+                             f"({first_line(exc)})") from None
+        return conn
 
     def _connect_pg(self) -> Any:
         import psycopg
 
-        conn = psycopg.connect(self._pg_target, autocommit=True)
+        conn = psycopg.connect(self._pg_target, autocommit=True, connect_timeout=10)
         # Bounded waits for another collector's row locks: an error, never a hang.
         conn.execute(f"SET lock_timeout = {self._lock_timeout_ms}")
         return conn

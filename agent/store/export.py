@@ -713,6 +713,7 @@ class TimeSeriesExporter:
         self._write_api = self._client.write_api(write_options=SYNCHRONOUS)
         self._held: list[_Row] = []  # claimed, not yet written: retried before claiming more
         self._failures = 0
+        self.failures_total = 0  # every failed write or queue access (the collector's metric)
         self._lock = threading.Lock()
 
     # -- public -----------------------------------------------------------------------------
@@ -744,6 +745,7 @@ class TimeSeriesExporter:
                     self._write_rows(chunk, step)
             except _Transient as exc:
                 self._failures += 1
+                self.failures_total += 1
                 step.error = str(exc)
                 step.retry_in_s = self._backoff()
                 log.warning("export.write_failed", error=step.error, held=len(self._held),
@@ -783,6 +785,7 @@ class TimeSeriesExporter:
                 step = self.export_once()
             except Exception as exc:  # the store failed: rows stay queued, try again later
                 self._failures += 1
+                self.failures_total += 1
                 delay = self._backoff()
                 log.error("export.queue_failed", error=repr(exc), retry_in_s=round(delay, 3))
                 stop.wait(delay)

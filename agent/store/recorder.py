@@ -51,7 +51,7 @@ from agent.collect.outages import (
 )
 from agent.collect.outages import site_outages as _site_outages
 from agent.events.types import Capture, dip_duration_of
-from agent.store.db import Database, StoreError
+from agent.store.db import Database, StoreError, describe_url, first_line
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
 EVENT_STATES = ("open", "closed")
@@ -418,10 +418,13 @@ class RecorderStore:
     """
 
     def __init__(self, url: str, captures_dir: str | Path, *, keep_trend: bool = True,
-                 first_seq: int = 1, busy_timeout_s: float = 30.0, migrate: bool = True) -> None:
-        self.db = Database(url, busy_timeout_s=busy_timeout_s)
+                 first_seq: int = 1, busy_timeout_s: float = 30.0, migrate: bool = True,
+                 export: bool = True, must_exist: bool = False) -> None:
+        self.db = Database(url, busy_timeout_s=busy_timeout_s, must_exist=must_exist)
         self.captures_dir = Path(captures_dir)
         self.keep_trend = keep_trend
+        # False when no exporter is configured: nothing would ever drain the queue.
+        self.export = export
         self.first_seq = first_seq
         self._lock_suffix = " FOR UPDATE" if self.db.dialect == "postgresql" else ""
         self._pending = _Pending()
@@ -466,6 +469,25 @@ class RecorderStore:
     @staticmethod
     def latest_schema_version() -> int:
         return _MIGRATIONS[-1][0]
+
+    @classmethod
+    def open_existing(cls, url: str, captures_dir: str | Path) -> RecorderStore:
+        """Open a store that must already exist, for readers (report, capture): creates and
+        migrates nothing; StoreError (one line) when it cannot be opened or is not a
+        recorder store."""
+        store = cls(url, captures_dir, migrate=False, must_exist=True)
+        try:
+            row = store.db.query_one("SELECT MAX(version) FROM schema_version")
+            version = int(row[0]) if row and row[0] is not None else 0
+        except Exception as exc:  # any driver error here means "not a recorder store"
+            store.close()
+            raise StoreError(f"store {describe_url(url)}: not a halfcycle recorder store "
+                             f"({first_line(exc)})") from None
+        if version < 1:
+            store.close()
+            raise StoreError(f"store {describe_url(url)}: not a halfcycle recorder store "
+                             "(no schema)")
+        return store
 
     def close(self) -> None:
         self.db.close()
@@ -965,6 +987,8 @@ class RecorderStore:
         message type, ``payload`` = the message (for a capture: its metadata, not the
         samples). Bytes are stored as ``{"$base64": ...}``. ``text``: ``to_json(payload)``
         when the caller has it already."""
+        if not self.export:
+            return
         if text is None or "data" in payload:
             text = to_json({k: v for k, v in payload.items() if k != "data"})
         self._pending.exports.append((kind, device, site, ref, text, at))
@@ -1056,6 +1080,42 @@ class RecorderStore:
         return self.db.run_in_transaction(
             lambda db: db.execute("DELETE FROM trend WHERE t_utc < ?", (before_utc,)).rowcount)
 
+    def prune_dead_letters(self, before_utc: float) -> int:
+        """Delete dead letters received before ``before_utc`` [s UTC]; returns the count."""
+        return self.db.run_in_transaction(lambda db: db.execute(
+            "DELETE FROM dead_letters WHERE received_at < ?", (before_utc,)).rowcount)
+
+    def prune_captures(self, before_utc: float) -> int:
+        """Delete captures completed before ``before_utc`` [s UTC] and their files (a file
+        shared by an identical capture that is kept stays); returns the rows removed.
+
+        Rows go first, in one transaction; files after the commit, so a crash in between
+        leaves a stray file, never a row without its file.
+        """
+        def work(db: Database) -> list[str]:
+            names = [r[0] for r in db.query(
+                "SELECT file_name FROM captures WHERE completed_at < ?", (before_utc,))]
+            db.execute("DELETE FROM captures WHERE completed_at < ?", (before_utc,))
+            return names
+
+        names = self.db.run_in_transaction(work)
+        for name in set(names):
+            if self.db.query_one("SELECT 1 FROM captures WHERE file_name = ?", (name,)) is None:
+                with suppress(FileNotFoundError):
+                    (self.captures_dir / name).unlink()
+        return len(names)
+
+    def prune_export_queue(self, before_utc: float) -> int:
+        """Delete export rows queued before ``before_utc`` [s UTC]. Only for a store that no
+        exporter drains (the collector calls it when ``[export]`` is not configured)."""
+        return self.db.run_in_transaction(lambda db: db.execute(
+            "DELETE FROM export_queue WHERE created_at < ?", (before_utc,)).rowcount)
+
+    def probe(self) -> None:
+        """Prove the store can take a write transaction now (reconnecting a lost PostgreSQL
+        connection first); raises the driver's error or StoreError when it cannot."""
+        self.db.run_in_transaction(lambda db: db.query_one("SELECT 1"), attempts=1)
+
     # --- queries --------------------------------------------------------------------------
 
     def committed_upto(self, device: str, epoch: str) -> int | None:
@@ -1066,6 +1126,11 @@ class RecorderStore:
     def streams(self) -> dict[tuple[str, str], int]:
         return {(d, e): int(c) for d, e, c in
                 self.db.query("SELECT device, epoch, committed_upto FROM streams")}
+
+    def device_site(self, device: str) -> str | None:
+        """The site a device's messages have been stored under, or None if never seen."""
+        row = self.db.query_one("SELECT site FROM devices WHERE device = ?", (device,))
+        return str(row[0]) if row else None
 
     def devices(self) -> list[dict[str, Any]]:
         rows = self.db.query("SELECT device, site, model, status, first_seen, last_seen, state,"
@@ -1123,6 +1188,22 @@ class RecorderStore:
             return self._capture_rows("", ())
         return self._capture_rows("WHERE event_id = ?", (event_id,))
 
+    def captures_by_time(self, event_id: str | None = None) -> list[dict[str, Any]]:
+        """:meth:`captures` in trigger-time order, each with ``trigger_utc`` [s UTC] (from the
+        codec meta; the completion time when a capture carries none) and ``event_kind``
+        (dip, swell, interruption; None when the event message is not stored)."""
+        kinds = dict(self.db.query("SELECT event_id, kind FROM events"))
+        out = []
+        for row in self.captures(event_id):
+            fields = row["fields"]
+            meta = fields.get("meta") if isinstance(fields.get("meta"), dict) else {}
+            t = meta.get("trigger_utc", fields.get("trigger_utc", row["completed_at"]))
+            out.append({**row, "trigger_utc": float(t) if isinstance(t, int | float)
+                        else float(row["completed_at"]),
+                        "event_kind": kinds.get(row["event_id"])})
+        out.sort(key=lambda r: (r["trigger_utc"], r["capture_id"]))
+        return out
+
     def capture_info(self, capture_id: str) -> dict[str, Any]:
         """One complete capture as in :meth:`captures`; StoreError if not stored."""
         found = self._capture_rows("WHERE capture_id = ?", (capture_id,))
@@ -1142,7 +1223,12 @@ class RecorderStore:
         """The reassembled bytes of a complete capture (checked against its sha256) and the
         ``fields`` of its chunk messages (see :meth:`captures`)."""
         cap = self.capture_info(capture_id)
-        data = Path(cap["path"]).read_bytes()
+        try:
+            data = Path(cap["path"]).read_bytes()
+        except FileNotFoundError:
+            raise StoreError(f"capture {capture_id}: its file {cap['path'].name} is not in "
+                             f"{self.captures_dir} (is that the collector's captures "
+                             "folder?)") from None
         if hashlib.sha256(data).hexdigest() != cap["sha256"]:
             raise StoreError(f"capture file {cap['path']} does not match its sha256")
         return data, cap["fields"]
