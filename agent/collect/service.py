@@ -30,6 +30,8 @@ import structlog
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
+from agent.alerts.config import AlertSettings, load_alert_settings
+from agent.alerts.service import CollectorAlerts
 from agent.config import Section, load_toml
 from agent.publish.mqtt import PublisherConfig
 from agent.store.export import Precision
@@ -73,12 +75,13 @@ class CollectorSettings:
     max_payload_bytes: int = 4 * 1024 * 1024
     future_tolerance_s: float = 300.0
     receive_maximum: int = 1000
+    alerts: AlertSettings | None = None
 
 
 def load_collector_settings(path: str | Path) -> CollectorSettings:
     p = Path(path)
     doc = Section(load_toml(p), p)
-    doc.reject_unknown({"collector", "store", "mqtt", "export", "ingest"})
+    doc.reject_unknown({"collector", "store", "mqtt", "export", "ingest", "alerts"})
     col = doc.section("collector")
     col.reject_unknown({"id", "group"})
     store = doc.section("store", required=True)
@@ -132,6 +135,7 @@ def load_collector_settings(path: str | Path) -> CollectorSettings:
         max_payload_bytes=ingest.get("max_payload_bytes", int, 4 * 1024 * 1024),
         future_tolerance_s=ingest.get("future_tolerance_s", float, 300.0),
         receive_maximum=ingest.get("receive_maximum", int, 1000),
+        alerts=load_alert_settings(doc.section("alerts")) if doc.has("alerts") else None,
     )
 
 
@@ -197,6 +201,9 @@ class Collector:
         self._client = self._make_client()
         self.store: RecorderStore | None = None
         self.is_exporter = False
+        # Alerts (agent/alerts): judged in the commit transaction and on a tick, sent apart.
+        self.alerts = (CollectorAlerts(settings.alerts, clock=clock)
+                       if settings.alerts is not None else None)
 
     # --- MQTT side (paho's thread) ----------------------------------------------------------
     def _make_client(self) -> mqtt.Client:
@@ -368,9 +375,13 @@ class Collector:
         s = self.settings
         store = RecorderStore(s.store_url, s.captures_dir, keep_trend=s.keep_trend)
         self.store = store
+        if self.alerts is not None:
+            self.alerts.attach(store)
         last_prune = 0.0
         try:
             while not stop.is_set() or not self._queue.empty():
+                if self.alerts is not None:
+                    self.alerts.maybe_tick(store)
                 batch = self._take_batch(stop)
                 if not batch:
                     if stop.is_set():
@@ -437,6 +448,13 @@ class Collector:
         if self.settings.export is not None:
             exporter = threading.Thread(target=self._exporter, args=(writer_stop,), name="exporter")
             exporter.start()
+        sender = None
+        if self.alerts is not None:
+            sender = threading.Thread(
+                target=self.alerts.run_sender, name="alerts",
+                args=(self.settings.store_url, self.settings.captures_dir, self._client,
+                      writer_stop))
+            sender.start()
         self._client.connect_async(
             cfg.host, cfg.port, keepalive=cfg.keepalive_s, clean_start=False, properties=props
         )
@@ -462,6 +480,8 @@ class Collector:
             writer.join(timeout=30)
             if exporter is not None:
                 exporter.join(timeout=30)
+            if sender is not None:
+                sender.join(timeout=30)
             self._client.disconnect()
             self._client.loop_stop()
             log.info(
