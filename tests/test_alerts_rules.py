@@ -36,7 +36,7 @@ T0 = 1_700_000_000.0
 
 def run(rule: AlertRule, timeline: list[tuple[float, bool]], since: float | None = None
         ) -> list[tuple[float, str]]:
-    state, out = RuleState(), []
+    state, out = RuleState(), list[tuple[float, str]]()
     for t, active in timeline:
         cond = Condition(active, since if since is not None else (t if active else None))
         state, change = step(rule, cond, state, t)
@@ -243,7 +243,7 @@ def test_event_and_fleet_notices_once(store: RecorderStore) -> None:
     commit(store, T0 + 103, sag(1, "h3", "e3", start + 0.02, 1.0))  # redelivered
     fleet = [a for a, _ in queued(store) if a.startswith("street:")]
     assert fleet == ["street:fleet:e1"]
-    notice = [a for a in q.history(store.db) if a["rule"] == "street"][0]
+    notice = next(a for a in q.history(store.db) if a["rule"] == "street")
     assert notice["details"]["units"] == 3 and notice["device"] is None
     # A short sag (instantaneous, IEEE 1159) elsewhere: no event notice, no fleet notice.
     commit(store, T0 + 200, sag(2, "h1", "e9", T0 + 150, 0.2))

@@ -225,9 +225,12 @@ class AlertSender:
 
     def run(self, stop: threading.Event, *, poll_s: float = 0.5) -> None:
         """Deliver until ``stop``; a store error is logged and retried after a pause."""
-        q.release(self.db)  # claims left by a process that died hold nothing back
+        released = False
         while not stop.is_set():
             try:
+                if not released:  # claims left by a process that died hold nothing back
+                    q.release(self.db)
+                    released = True
                 busy = self.pass_once()
             except Exception as exc:  # the store is away: wait and retry
                 log.error("alert_sender_failed", error=str(exc))

@@ -956,8 +956,11 @@ class RecorderStore:
 
     def _set_state(self, db: Database, device: str, site: str, state: str, t: float) -> None:
         self._ensure_device(db, device, site, t)
+        # "unknown" is no report: the first presence wins even if the row was created by a
+        # data message received a moment after it (in the same batch).
         db.execute("UPDATE devices SET state = ?, state_since = ? WHERE device = ?"
-                   " AND state <> ? AND state_since <= ?", (state, t, device, state, t))
+                   " AND state <> ? AND (state = 'unknown' OR state_since <= ?)",
+                   (state, t, device, state, t))
 
     # --- dead letters ---------------------------------------------------------------------
 
