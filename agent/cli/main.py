@@ -17,7 +17,8 @@ from agent import __version__
 from agent.config import ConfigError
 
 # Command modules, in the order they appear in --help.
-COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "demo")
+COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "export",
+            "demo")
 
 
 class UserError(Exception):
@@ -58,4 +59,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # Through the package module, so that commands raise the same UserError class that
+    # main() catches (under ``python -m`` this file is also ``__main__``, a second copy).
+    from agent.cli.main import main as _main
+
+    sys.exit(_main())
