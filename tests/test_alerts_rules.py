@@ -123,6 +123,21 @@ def test_config_errors_name_the_key(tmp_path: Path) -> None:
         load({"mqtt": False, "rule": [{"kind": "offline", "channels": ["webhook"]}]})
 
 
+def test_the_example_collector_config_parses(tmp_path: Path) -> None:
+    import tomllib
+
+    example = Path(__file__).resolve().parents[1] / "deploy" / "collector.example.toml"
+    doc = tomllib.loads(example.read_text())
+    (tmp_path / "smtp.password").write_text("invented\n")
+    doc["alerts"]["email"]["password_file"] = str(tmp_path / "smtp.password")
+    cfg = load_alert_settings(Section(doc["alerts"], example, "alerts"))
+    assert cfg.channels == ("mqtt", "webhook", "email") and cfg.email is not None
+    assert cfg.email.password == "invented" and len(cfg.rules) == 6
+    by_name = {r.name: r for r in cfg.rules}
+    assert by_name["offline-1h"].for_s == 3600 and by_name["street-wide"].min_units == 3
+    assert cfg.channels_for(by_name["long-or-deep"]) == ("webhook",)
+
+
 # --- the engine over a real store ---------------------------------------------------------------
 
 pytestmark_store = pytest.mark.parametrize("store_url", ["sqlite", "postgresql"], indirect=True)
