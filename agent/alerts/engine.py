@@ -58,6 +58,7 @@ class AlertStats:
     notices: int = 0
     errors: int = 0
     ticks: int = 0
+    judge_s: float = 0.0  # wall time spent judging in commits and ticks [s] (for benchmarks)
 
 
 def _state(row: Mapping[str, Any] | None) -> RuleState:
@@ -99,6 +100,7 @@ class AlertEngine:
     def on_commit(self, store: RecorderStore, db: Database, info: CommitInfo,
                   _commit_now: float) -> None:
         """``RecorderStore.after_commit``: judge what this batch touched, in its transaction."""
+        began = time.perf_counter()
         db.execute("SAVEPOINT alerts")
         try:
             self._after_batch(store, db, info, self.clock())
@@ -107,6 +109,7 @@ class AlertEngine:
             self.stats.errors += 1
             log.error("alerts_failed", error=str(exc), where="commit")
         db.execute("RELEASE SAVEPOINT alerts")
+        self.stats.judge_s += time.perf_counter() - began
 
     def tick(self, store: RecorderStore) -> None:
         """Judge every unit now, in one transaction of its own."""
@@ -118,7 +121,9 @@ class AlertEngine:
 
         self.stats.ticks += 1
         if self.unit_rules:
+            began = time.perf_counter()
             store.db.run_in_transaction(work)
+            self.stats.judge_s += time.perf_counter() - began
 
     # --- unit rules --------------------------------------------------------------------------
 
