@@ -1,5 +1,6 @@
 """Alert delivery against real receivers: an HTTP server and an SMTP server (aiosmtpd) on
-127.0.0.1 that are stopped and started again mid-test, over a real SQLite recorder store.
+127.0.0.1 that are stopped and started again mid-test, over a real recorder store (SQLite
+file and PostgreSQL).
 
 What is checked (the project's delivery contract, agent/alerts/deliver.py): every alert
 reaches every channel exactly once once the receivers are back, in the order raised; one
@@ -18,6 +19,7 @@ from typing import Any
 
 import pytest
 from _alert_helpers import SmtpReceiver, WebhookReceiver, wait_for
+from _store_helpers import pg_database, schema_url
 
 from agent.alerts.config import AlertSettings, EmailSettings, WebhookSettings
 from agent.alerts.deliver import AlertSender, EmailChannel, WebhookChannel, backoff_s
@@ -26,13 +28,19 @@ from agent.alerts.rules import AlertRule
 from agent.store import alerts as q
 from agent.store.recorder import RecorderStore
 
+__all__ = ["pg_database"]  # the fixture, imported for pytest
 T0 = 1_700_000_000.0
 RULE = AlertRule("lost-power", "lost_power")
 
 
-@pytest.fixture
-def store(tmp_path: Path) -> Iterator[RecorderStore]:
-    s = RecorderStore(f"sqlite:///{tmp_path / 'recorder.db'}", tmp_path / "captures")
+@pytest.fixture(params=["sqlite", "postgresql"])
+def store(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[RecorderStore]:
+    """A real SQLite file, or a fresh schema of the test PostgreSQL database."""
+    if request.param == "sqlite":
+        url = f"sqlite:///{tmp_path / 'recorder.db'}"
+    else:
+        url = schema_url(request.getfixturevalue("pg_database"))
+    s = RecorderStore(url, tmp_path / "captures")
     yield s
     s.close()
 
