@@ -47,6 +47,7 @@ def test_collector_example_loads(tmp_path: Path, monkeypatch: pytest.MonkeyPatch
     creds.mkdir()
     (creds / "collector.password").write_text("pw\n")
     (tmp_path / "tsdb.token").write_text("tok\n")
+    (tmp_path / "smtp.password").write_text("mail\n")
     (tmp_path / "ca.crt").write_text("not read at load time\n")
     text = (ROOT / "deploy" / "collector.example.toml").read_text()
     text = text.replace("/etc/halfcycle/", f"{tmp_path}/").replace("/var/lib/halfcycle",
@@ -57,4 +58,6 @@ def test_collector_example_loads(tmp_path: Path, monkeypatch: pytest.MonkeyPatch
     s = load_collector_settings(cfg)
     assert s.mqtt.password == "pw" and s.export is not None and s.export.token == "tok"
     assert s.metrics is not None and s.metrics.loopback and s.metrics.port == 9464
+    assert s.alerts is not None and s.alerts.email is not None
+    assert s.alerts.email.password == "mail"
     assert s.retention.trend_days == 90 and s.retention.capture_days == 365

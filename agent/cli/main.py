@@ -19,7 +19,8 @@ from agent.config import ConfigError
 from agent.store.db import StoreError
 
 # Command modules, in the order they appear in --help.
-COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "demo")
+COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "export",
+            "demo")
 
 
 class UserError(Exception):

@@ -31,6 +31,8 @@ import structlog
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
+from agent.alerts.config import AlertSettings, load_alert_settings
+from agent.alerts.service import CollectorAlerts
 from agent.collect.presence import Presence
 from agent.config import Section, load_toml
 from agent.ops.metrics import CollectorMetrics, MetricsSettings
@@ -38,6 +40,7 @@ from agent.ops.retention import Pruner, RetentionSettings
 from agent.ops.secrets import read_secret_file, warn_if_exposed
 from agent.ops.systemd import Notifier
 from agent.publish.mqtt import PublisherConfig
+from agent.store import alerts as _alert_queue
 from agent.store.db import describe_url, first_line
 from agent.store.export import Precision
 from agent.store.recorder import Item, RecorderStore
@@ -84,13 +87,14 @@ class CollectorSettings:
     max_payload_bytes: int = 4 * 1024 * 1024
     future_tolerance_s: float = 300.0
     receive_maximum: int = 1000
+    alerts: AlertSettings | None = None
 
 
 def load_collector_settings(path: str | Path) -> CollectorSettings:
     p = Path(path)
     doc = Section(load_toml(p), p)
     doc.reject_unknown({"collector", "store", "mqtt", "export", "ingest", "retention", "metrics",
-                        "log"})
+                        "log", "alerts"})
     col = doc.section("collector")
     col.reject_unknown({"id", "group", "stats_interval_s"})
     store = doc.section("store", required=True)
@@ -162,6 +166,7 @@ def load_collector_settings(path: str | Path) -> CollectorSettings:
         max_payload_bytes=ingest.get("max_payload_bytes", int, 4 * 1024 * 1024),
         future_tolerance_s=ingest.get("future_tolerance_s", float, 300.0),
         receive_maximum=ingest.get("receive_maximum", int, 1000),
+        alerts=load_alert_settings(doc.section("alerts")) if doc.has("alerts") else None,
     )
 
 
@@ -247,6 +252,9 @@ class Collector:
         self._rejoin_delay = 1.0
         self._next_rejoin = 0.0
         self._healthy = True  # no commit failed since the last one that went through
+        # Alerts (agent/alerts): judged in the commit transaction and on a tick, sent apart.
+        self.alerts = (CollectorAlerts(settings.alerts, clock=clock)
+                       if settings.alerts is not None else None)
 
     # --- MQTT side (paho's thread) ----------------------------------------------------------
     def _make_client(self) -> mqtt.Client:
@@ -495,9 +503,13 @@ class Collector:
 
     def _writer(self, stop: threading.Event, store: RecorderStore) -> None:
         self.store = store
+        if self.alerts is not None:
+            self.alerts.attach(store)
         try:
             while not stop.is_set() or (not self._queue.empty() and not self.aside):
                 self._tick(store)
+                if self.alerts is not None:
+                    self.alerts.maybe_tick(store)
                 if self.aside:
                     self._try_rejoin(store, stop)
                     continue
@@ -536,6 +548,10 @@ class Collector:
                 self.metrics.export_backlog.set(backlog)
             except Exception:  # counted and reported by the next commit
                 backlog = None
+        if self.alerts is not None and not self.aside:
+            # A failing store is counted and reported by the next commit.
+            with suppress(Exception):
+                self.metrics.alerts_pending.set(sum(_alert_queue.backlog(store.db).values()))
         if self._exporter_obj is not None:
             self.metrics.export_failures.inc(
                 self._exporter_obj.failures_total - self._export_failures_seen)
@@ -667,6 +683,13 @@ class Collector:
         if self.settings.export is not None:
             exporter = threading.Thread(target=self._exporter, args=(writer_stop,), name="exporter")
             exporter.start()
+        sender = None
+        if self.alerts is not None:
+            sender = threading.Thread(
+                target=self.alerts.run_sender, name="alerts",
+                args=(self.settings.store_url, self.settings.captures_dir, self._client,
+                      writer_stop))
+            sender.start()
         self._client.connect_async(
             cfg.host, cfg.port, keepalive=cfg.keepalive_s, clean_start=False, properties=props
         )
@@ -702,6 +725,8 @@ class Collector:
                 with suppress(RuntimeError, ValueError):
                     self._client.publish(self.presence.topic, self.presence.body("offline"),
                                          qos=1, retain=True).wait_for_publish(2.0)
+            if sender is not None:
+                sender.join(timeout=30)
             self._client.disconnect()
             self._client.loop_stop()
             self.metrics.close()

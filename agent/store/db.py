@@ -236,6 +236,28 @@ class Database:
         with self._pg.cursor() as cur:
             cur.executemany(sql, rows)
 
+    def stream(self, text: str, params: Sequence[Any] = (), *, size: int = 1000
+               ) -> Iterator[tuple[Any, ...]]:
+        """Rows of a read query, ``size`` at a time, without holding them all in memory (a
+        server-side cursor in a read transaction on PostgreSQL). Not inside a write
+        transaction; the connection is busy until the iterator is exhausted or closed."""
+        sql = self.sql(text)
+        if self._sqlite is not None:
+            cur = self._sqlite.execute(sql, tuple(params))
+            try:
+                while rows := cur.fetchmany(size):
+                    yield from (tuple(r) for r in rows)
+            finally:
+                cur.close()
+            return
+        if self.broken:
+            self.reconnect()
+        with self._pg.transaction(), self._pg.cursor(name="hc_stream") as cur:
+            cur.itersize = size
+            cur.execute(sql, tuple(params))
+            for row in cur:
+                yield tuple(row)
+
     def query(self, text: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
         return [tuple(r) for r in self.execute(text, params).fetchall()]
 

@@ -36,7 +36,7 @@ import os
 import re
 import time
 import uuid
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from contextlib import suppress
 from dataclasses import dataclass
 from pathlib import Path
@@ -51,6 +51,7 @@ from agent.collect.outages import (
 )
 from agent.collect.outages import site_outages as _site_outages
 from agent.events.types import Capture, dip_duration_of
+from agent.store import alerts as _alerts
 from agent.store.db import Database, StoreError, describe_url, first_line
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
@@ -227,6 +228,8 @@ CREATE TABLE IF NOT EXISTS outage_windows (
 );
 CREATE INDEX IF NOT EXISTS outage_windows_site ON outage_windows (site, start_utc)
 """),
+    # Alert rule state, delivery queue and history (agent/store/alerts.py).
+    (3, _alerts.MIGRATION),
 ]
 
 
@@ -249,6 +252,22 @@ class Item:
     # sequence number still counts as received, so the device's outbox is not stalled by a
     # message that would fail again on every resend.
     reject: str | None = None
+
+
+@dataclass
+class CommitInfo:
+    """What one committed batch touched, for the ``after_commit`` hook: the message kinds
+    per device (``presence`` for presence status), each device's site, and the ids of the
+    events written."""
+
+    kinds: dict[str, set[str]]
+    sites: dict[str, str]
+    event_ids: list[str]
+
+
+#: Called inside the batch's transaction, after its rows are written (alerts hook here so
+#: what they queue commits, or rolls back, with the messages that raised them).
+AfterCommit = Callable[["RecorderStore", Database, CommitInfo, float], None]
 
 
 class ExportRow(NamedTuple):
@@ -428,6 +447,7 @@ class RecorderStore:
         self.first_seq = first_seq
         self._lock_suffix = " FOR UPDATE" if self.db.dialect == "postgresql" else ""
         self._pending = _Pending()
+        self.after_commit: AfterCommit | None = None
         if migrate:
             try:
                 self.migrate()
@@ -581,7 +601,23 @@ class RecorderStore:
                 db.execute("UPDATE streams SET committed_upto = ?, updated_at = ?"
                            " WHERE device = ? AND epoch = ?", (new, now, key[0], key[1]))
                 upto[key] = new
+        if self.after_commit is not None:
+            self.after_commit(self, db, self._commit_info(parsed, presence), now)
         return upto
+
+    @staticmethod
+    def _commit_info(parsed: Sequence[tuple[Item, tuple[str, str, str, str, int], float]],
+                     presence: Sequence[tuple[Item, str, str, float]]) -> CommitInfo:
+        info = CommitInfo({}, {}, [])
+        for item, (kind, device, site, _, _), _ in parsed:
+            info.kinds.setdefault(device, set()).add(kind)
+            info.sites[device] = site
+            if kind == "event" and isinstance(item.message.get("event_id"), str):
+                info.event_ids.append(item.message["event_id"])
+        for _, device, site, _ in presence:
+            info.kinds.setdefault(device, set()).add("presence")
+            info.sites[device] = site
+        return info
 
     def _apply_all(self, db: Database, parsed: Sequence[tuple[Item, tuple[str, str, str, str, int],
                                                               float]],
@@ -944,8 +980,11 @@ class RecorderStore:
 
     def _set_state(self, db: Database, device: str, site: str, state: str, t: float) -> None:
         self._ensure_device(db, device, site, t)
+        # "unknown" is no report: the first presence wins even if the row was created by a
+        # data message received a moment after it (in the same batch).
         db.execute("UPDATE devices SET state = ?, state_since = ? WHERE device = ?"
-                   " AND state <> ? AND state_since <= ?", (state, t, device, state, t))
+                   " AND state <> ? AND (state = 'unknown' OR state_since <= ?)",
+                   (state, t, device, state, t))
 
     # --- dead letters ---------------------------------------------------------------------
 
@@ -1343,7 +1382,7 @@ class RecorderStore:
 
 _TABLES = ("devices", "streams", "received", "aggregates", "trend", "events", "captures",
            "capture_chunks", "gaps", "dead_letters", "export_queue", "outage_windows",
-           "schema_version")
+           "alert_state", "alert_queue", "alert_log", "schema_version")
 
-__all__ = ["BadMessage", "ExportRow", "Item", "RecorderStore", "StoreError", "envelope",
-           "from_json", "to_json", "write_file_durably"]
+__all__ = ["BadMessage", "CommitInfo", "ExportRow", "Item", "RecorderStore", "StoreError",
+           "envelope", "from_json", "to_json", "write_file_durably"]

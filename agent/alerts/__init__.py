@@ -1,0 +1,1 @@
+"""Alerts: rules over the recorder store, queued with what raised them, delivered per channel."""
