@@ -52,8 +52,8 @@ from agent.measurement.types import Aggregate  # noqa: E402
 from agent.store.recorder import Item, RecorderStore  # noqa: E402
 from agent.wire import codec  # noqa: E402
 from agent.wire.packing import pack_values  # noqa: E402
-from agent.wire.validate import validate  # noqa: E402
 from agent.wire.records import DEFAULT_EXPONENTS, FLAG_EVENT  # noqa: E402
+from agent.wire.validate import validate  # noqa: E402
 
 SITE = "invented-town"
 DAY = 86400
