@@ -52,10 +52,12 @@ from agent.report.compliance import (
 )
 from agent.site import infer_nominal
 from agent.store.recorder import RecorderStore
-from agent.store.trend import TrendChunk
+from agent.store.trend import VOLTAGE_FIELDS, TrendChunk
 from agent.wire.records import FLAG_EVENT
 
 REPORT_VERSION = 1
+#: Per-second fields the report reads (the rest of each stored summary stays packed).
+TREND_FIELDS = VOLTAGE_FIELDS | {"hz"}
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
 REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
@@ -451,7 +453,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         # One home at a time: its seconds are decoded chunk by chunk and dropped once its
         # section is made, so memory follows the largest home, not the fleet.
         trend = _Trend()
-        for chunk in store.trend_arrays(name, start_utc, end_utc):
+        for chunk in store.trend_arrays(name, start_utc, end_utc, fields=TREND_FIELDS):
             trend.add(chunk)
         events = by_device.get(name, [])
         sections.append(_device_section(dev, events, trend.arrays(),

@@ -487,7 +487,7 @@ def _write_rollups(db: Database, summaries: Sequence[tuple[str, Mapping[str, Any
         by_device.setdefault(device, []).append(msg)
     rows: list[tuple[Any, ...]] = []
     for device in sorted(by_device):
-        chunk = trend_codec.decode_rows(by_device[device])
+        chunk = trend_codec.decode_rows(by_device[device], trend_codec.VOLTAGE_FIELDS)
         nominal = _device_nominal(db, device)
         for r in trend_codec.rollup(chunk, nominal):
             counts = (*(r.below or (None,) * 3), *(r.above or (None,) * 2))
@@ -1488,15 +1488,17 @@ class RecorderStore:
             last = tuple(rows[-1][:3])
 
     def trend_arrays(self, device: str, start_utc: float | None = None,
-                     end_utc: float | None = None, *, page: int = 1440
+                     end_utc: float | None = None, *, page: int = 1440,
+                     fields: frozenset[str] = trend_codec.ALL_FIELDS
                      ) -> Iterator[trend_codec.TrendChunk]:
         """The per-second trend of one device as numpy arrays, chunk by chunk (``page``
         summaries each, a day of 60-s summaries by default), in time order; summaries whose
         first second lies in ``[start_utc, end_utc)`` [s UTC]. Rows that do not decode are
         counted in each chunk's ``errors``. Values equal
-        :func:`agent.wire.codec.summary_arrays` of each stored message."""
+        :func:`agent.wire.codec.summary_arrays` of each stored message; ``fields`` (see
+        :data:`agent.store.trend.VOLTAGE_FIELDS`) leaves the others NaN, undecoded."""
         for bodies in self._trend_bodies(self.db, device, start_utc, end_utc, page):
-            yield trend_codec.decode_rows(bodies)
+            yield trend_codec.decode_rows(bodies, fields)
 
     def ten_min_aggregates(self, device: str, start_utc: float | None = None,
                            end_utc: float | None = None) -> list[Any]:

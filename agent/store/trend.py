@@ -25,6 +25,7 @@ import msgpack
 import numpy as np
 import numpy.typing as npt
 
+from agent.wire.packing import MAX_WIDTH, _gather_bits
 from agent.wire.records import FLAG_EVENT
 
 F64 = npt.NDArray[np.float64]
@@ -103,15 +104,67 @@ def _physical(units: I64, missing: BOOL, exps: I64) -> F64:
     return out
 
 
-def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int) -> dict[str, Any]:
-    """Arrays of summaries that share ``n`` and channel count, decoded together."""
-    from agent.wire.packing import unpack_units_many
+def _units_many(arrays: Sequence[Sequence[Any]], n: int) -> tuple[I64, BOOL, I64]:
+    """Units, missing masks and exponents of stored packed arrays of ``n`` values each.
 
+    The rows were validated against the schema when they arrived, so only what keeps the
+    bit gather inside its buffer is checked here (stream and mask lengths, width range);
+    the full checks are :func:`agent.wire.packing.unpack_units_many`'s.
+    """
+    count = n - 1
+    mask_len = (n + 7) // 8
+    starts: list[int] = []
+    widths: list[int] = []
+    firsts: list[int] = []
+    exps: list[int] = []
+    chunks: list[bytes] = []
+    masks: list[bytes] = []
+    mask_rows: list[int] = []
+    offset = 0
+    for row, packed in enumerate(arrays):
+        exp, first, width, data = packed[0], packed[1], packed[2], packed[3]
+        if type(width) is not int or not 0 <= width <= MAX_WIDTH or type(data) is not bytes \
+                or len(data) != (count * width + 7) // 8:
+            raise ValueError(f"packed array {row} is malformed")
+        if len(packed) > 4:
+            mask = packed[4]
+            if type(mask) is not bytes or len(mask) != mask_len:
+                raise ValueError(f"packed array {row} has a malformed mask")
+            masks.append(mask)
+            mask_rows.append(row)
+        starts.append(8 * offset)
+        widths.append(width)
+        firsts.append(int(first))
+        exps.append(int(exp))
+        chunks.append(data)
+        offset += len(data)
+    rows = len(firsts)
+    units = np.empty((rows, n), dtype=np.int64)
+    missing = np.zeros((rows, n), dtype=bool)
+    head = np.array([starts, widths, firsts], dtype=np.int64)[:, :, None]
+    units[:, :1] = head[2]
+    if count and rows:
+        z = _gather_bits(b"".join(chunks), head[0], head[1], count)
+        np.cumsum((z >> 1) ^ -(z & 1), axis=1, out=units[:, 1:])  # unzigzag, then sum
+        units[:, 1:] += head[2]
+    if masks:
+        stacked = np.frombuffer(b"".join(masks), dtype=np.uint8).reshape(len(masks), -1)
+        missing[mask_rows] = np.unpackbits(stacked, axis=1, count=n, bitorder="little")
+    return units, missing, np.array(exps, dtype=np.int64)
+
+
+def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int,
+                  fields: frozenset[str]) -> dict[str, Any]:
+    """Arrays of summaries that share ``n`` and channel count, decoded together (fields not
+    in ``fields`` are left NaN)."""
     rows = len(bodies)
     out: dict[str, Any] = {}
     for name in (*_PER_CHANNEL, *_SINGLE):
         width = nch if name in _PER_CHANNEL else 1
         values = np.full((rows, width, n), np.nan)
+        if name not in fields:
+            out[name] = values.transpose(0, 2, 1).reshape(rows * n, width)
+            continue
         packed: list[Sequence[object]] = []
         where: list[tuple[int, int]] = []
         for r, body in enumerate(bodies):
@@ -124,8 +177,7 @@ def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int) -> dict
                     packed.append(arr)
                     where.append((r, c))
         if packed:
-            units, missing = unpack_units_many(packed, n)
-            exps = np.array([int(p[0]) for p in packed], dtype=np.int64)  # type: ignore[call-overload]
+            units, missing, exps = _units_many(packed, n)
             idx = np.array(where)
             values[idx[:, 0], idx[:, 1]] = _physical(units, missing, exps)
         # (rows, width, n) -> (rows * n, width): row after row, second after second.
@@ -136,13 +188,22 @@ def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int) -> dict
     return out
 
 
-def decode_rows(bodies: Iterable[Mapping[str, Any] | None]) -> TrendChunk:
-    """One chunk from stored summary bodies (None for a row that could not be unpacked).
+#: Every per-second field of a summary; :func:`decode_rows` may be asked for fewer.
+ALL_FIELDS = frozenset((*_PER_CHANNEL, *_SINGLE))
+#: What the voltage figures need (RMS and flags): thd, hz and imbalance stay packed.
+VOLTAGE_FIELDS = frozenset(("rms_min", "rms_mean", "rms_max", "flags"))
+
+
+def decode_rows(bodies: Iterable[Mapping[str, Any] | None],
+                fields: frozenset[str] = ALL_FIELDS) -> TrendChunk:
+    """One chunk from stored summary bodies (None for a row that could not be unpacked);
+    fields not in ``fields`` are NaN (``flags`` is always decoded: it marks presence).
 
     Rows are decoded in groups of equal length and channel count; a group that fails is
     decoded row by row so one bad row costs only itself (counted in ``errors``).
     """
     items = list(bodies)
+    fields = fields | {"flags"}
     errors = 0
     good: list[tuple[int, Mapping[str, Any]]] = []
     for i, b in enumerate(items):
@@ -162,12 +223,13 @@ def decode_rows(bodies: Iterable[Mapping[str, Any] | None]) -> TrendChunk:
         groups.setdefault((int(b["n"]), len(b["channels"])), []).append((i, b))
     for (n, ch), members in groups.items():
         try:
-            part = _decode_group([b for _, b in members], n, ch)
+            part = _decode_group([b for _, b in members], n, ch, fields)
             parts.append((members[0][0], part | {"_rows": [i for i, _ in members], "_n": n}))
         except Exception:
             for i, b in members:
                 try:
-                    parts.append((i, _decode_group([b], n, ch) | {"_rows": [i], "_n": n}))
+                    parts.append((i, _decode_group([b], n, ch, fields)
+                                  | {"_rows": [i], "_n": n}))
                 except Exception:
                     errors += 1
     return _assemble(parts, nch, errors)
@@ -247,7 +309,7 @@ def _opt(x: float) -> float | None:
 def rollup(chunk: TrendChunk, nominal_v: float | None,
            spans: Sequence[int] = SPANS) -> list[RollupRow]:
     """Per-channel rollups of a chunk's measured seconds, one row per (span, interval,
-    channel) that holds at least one second (vectorised with ``np.bincount`` / ``ufunc.at``).
+    channel) that holds at least one second (vectorised: one sort, then ``ufunc.reduceat``).
 
     References
     ----------
@@ -261,37 +323,29 @@ def rollup(chunk: TrendChunk, nominal_v: float | None,
         return out
     mean, low, high = chunk.rms_mean[keep], chunk.rms_min[keep], chunk.rms_max[keep]
     flagged = (chunk.flags[keep] & FLAG_EVENT) != 0
+    add, fmin, fmax = np.add.reduceat, np.fmin.reduceat, np.fmax.reduceat
     for span in spans:
         slot = np.floor(t / span).astype(np.int64)
-        slots, inverse = np.unique(slot, return_inverse=True)
-        k = slots.size
+        order = np.argsort(slot, kind="stable")
+        slot = slot[order]
+        starts = np.flatnonzero(np.r_[True, slot[1:] != slot[:-1]])
         for c in range(mean.shape[1]):
-            v = mean[:, c]
+            v, lv, hv = mean[order, c], low[order, c], high[order, c]
             has = np.isfinite(v)
             vv = np.where(has, v, 0.0)
-            seconds = np.bincount(inverse, weights=has, minlength=k)
-            fl = np.bincount(inverse, weights=has & flagged, minlength=k)
-            s1 = np.bincount(inverse, weights=vv, minlength=k)
-            s2 = np.bincount(inverse, weights=vv * vv, minlength=k)
-            mn = np.full(k, np.inf)
-            mx = np.full(k, -np.inf)
-            np.minimum.at(mn, inverse[has], v[has])
-            np.maximum.at(mx, inverse[has], v[has])
-            lo = np.full(k, np.inf)
-            pk = np.full(k, -np.inf)
-            lv, hv = low[:, c], high[:, c]
-            np.minimum.at(lo, inverse[np.isfinite(lv)], lv[np.isfinite(lv)])
-            np.maximum.at(pk, inverse[np.isfinite(hv)], hv[np.isfinite(hv)])
+            seconds = add(has.astype(np.int64), starts)
+            fl = add((has & flagged[order]).astype(np.int64), starts)
+            s1, s2 = add(vv, starts), add(vv * vv, starts)
+            mn, mx, lo, pk = fmin(v, starts), fmax(v, starts), fmin(lv, starts), fmax(hv, starts)
             if nominal_v:
-                below = [np.bincount(inverse, weights=has & (vv < p * nominal_v), minlength=k)
+                below = [add((has & (vv < p * nominal_v)).astype(np.int64), starts)
                          for p in LOW_PU]
-                above = [np.bincount(inverse, weights=has & (vv > p * nominal_v), minlength=k)
-                         for p in HIGH_PU]
-            for j in range(k):
+                above = [add((vv > p * nominal_v).astype(np.int64), starts) for p in HIGH_PU]
+            for j, first in enumerate(starts):
                 if seconds[j] == 0 and not np.isfinite(lo[j]) and not np.isfinite(pk[j]):
                     continue
                 out.append(RollupRow(
-                    t_utc=float(slots[j] * span), span_s=int(span), channel=c,
+                    t_utc=float(slot[first] * span), span_s=int(span), channel=c,
                     seconds=int(seconds[j]), flagged=int(fl[j]), sum_v=float(s1[j]),
                     sum_sq_v2=float(s2[j]), min_v=_opt(mn[j]), max_v=_opt(mx[j]),
                     low_v=_opt(lo[j]), peak_v=_opt(pk[j]),
@@ -301,5 +355,5 @@ def rollup(chunk: TrendChunk, nominal_v: float | None,
     return out
 
 
-__all__ = ["HIGH_PU", "LOW_PU", "SPANS", "RollupRow", "TrendChunk", "decode_rows", "pack_row",
-           "rollup", "unpack_row"]
+__all__ = ["ALL_FIELDS", "HIGH_PU", "LOW_PU", "SPANS", "VOLTAGE_FIELDS", "RollupRow",
+           "TrendChunk", "decode_rows", "pack_row", "rollup", "unpack_row"]
