@@ -52,12 +52,15 @@ from agent.report.compliance import (
 )
 from agent.site import infer_nominal
 from agent.store.recorder import RecorderStore
-from agent.store.trend import VOLTAGE_FIELDS, TrendChunk
+from agent.store.trend import TrendChunk
 from agent.wire.records import FLAG_EVENT
 
 REPORT_VERSION = 1
-#: Per-second fields the report reads (the rest of each stored summary stays packed).
-TREND_FIELDS = VOLTAGE_FIELDS | {"hz"}
+#: Per-second fields the report reads (the rest of each stored summary stays packed): the
+#: means and Urms(1/2) maxima, the flags, and the frequency only for a unit whose nominal
+#: frequency is not declared (it is then inferred from the median).
+TREND_FIELDS = frozenset(("rms_mean", "rms_max", "flags"))
+_NOMINAL_HZ = (50, 60)
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
 REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
@@ -163,7 +166,7 @@ def _nominal(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
 
 def _nominal_hz(model: Mapping[str, Any], trend: dict[str, np.ndarray] | None) -> float | None:
     hz = model.get("nominal_hz")
-    if hz in (50, 60, 50.0, 60.0):
+    if hz in _NOMINAL_HZ:
         return float(hz)
     if trend is not None and np.isfinite(trend["hz"]).any():
         med = float(np.nanmedian(trend["hz"]))
@@ -453,7 +456,9 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         # One home at a time: its seconds are decoded chunk by chunk and dropped once its
         # section is made, so memory follows the largest home, not the fleet.
         trend = _Trend()
-        for chunk in store.trend_arrays(name, start_utc, end_utc, fields=TREND_FIELDS):
+        fields = TREND_FIELDS if models[name].get("nominal_hz") in _NOMINAL_HZ \
+            else TREND_FIELDS | {"hz"}
+        for chunk in store.trend_arrays(name, start_utc, end_utc, fields=fields):
             trend.add(chunk)
         events = by_device.get(name, [])
         sections.append(_device_section(dev, events, trend.arrays(),

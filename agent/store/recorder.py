@@ -30,6 +30,7 @@ also serialises the capture chunks of one capture (they travel in one stream), s
 from __future__ import annotations
 
 import binascii
+import functools
 import hashlib
 import json
 import math
@@ -687,7 +688,7 @@ class RecorderStore:
                 if isinstance(t, int | float) and not isinstance(t, bool) and math.isfinite(t):
                     weeks.add(math.floor(t / TREND_PARTITION_S))
         for week in sorted(weeks - self._weeks):
-            self.db.run_in_transaction(lambda db, w=week: self._create_partition(db, w))
+            self.db.run_in_transaction(functools.partial(self._create_partition, week=week))
             self._weeks.add(week)
 
     def _ensure_partition(self, db: Database, t_utc: float) -> None:
@@ -1526,7 +1527,8 @@ class RecorderStore:
         """Trend rollups (:class:`agent.store.trend.RollupRow` fields; ``below``/``above``
         keyed by pu threshold) of one device or all, intervals of ``span_s`` (600 or 86400)
         starting in ``[start_utc, end_utc)``, ordered by device, time and channel."""
-        conds, params = ["span_s = ?"], [span_s]
+        conds: list[str] = ["span_s = ?"]
+        params: list[Any] = [span_s]
         for cond, value in (("device = ?", device), ("t_utc >= ?", start_utc),
                             ("t_utc < ?", end_utc)):
             if value is not None:

@@ -43,7 +43,9 @@ from urllib.parse import urlsplit, urlunsplit
 
 import numpy as np
 
-ROOT = Path(__file__).resolve().parents[2]
+# The code under test: this repository, or another checkout (HC_BENCH_TREE, set by
+# --baseline-tree for the child that measures the baseline code in the same run).
+ROOT = Path(os.environ.get("HC_BENCH_TREE") or Path(__file__).resolve().parents[2])
 sys.path.insert(0, str(ROOT))
 
 from agent.events.classify import classify_event  # noqa: E402
@@ -270,7 +272,7 @@ def run_report(url: str, captures: Path) -> tuple[float, int, int]:
         t = time.perf_counter()
         proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "report", "--store",
                                  url, "--captures", str(captures), "--json"],
-                                stdout=out, stderr=subprocess.PIPE, env=env)
+                                stdout=out, stderr=subprocess.PIPE, env=env, cwd=ROOT)
         _, status, usage = os.wait4(proc.pid, 0)
         wall = time.perf_counter() - t
         proc.returncode = os.waitstatus_to_exitcode(status)
@@ -356,6 +358,20 @@ def print_results(results: list[Result]) -> None:
                   + ", ".join(f"{k} {v / mb:.1f}" for k, v in top))
 
 
+def measure_tree(tree: str, backend: str, homes: int, days: int,
+                 args: argparse.Namespace) -> Result:
+    """One size measured with another checkout's code (a child process)."""
+    env = {**os.environ, "HC_BENCH_TREE": tree, "PYTHONPATH": tree}
+    out = subprocess.run(
+        [sys.executable, __file__, "--sizes", f"{homes}x{days}", "--backends", backend,
+         "--pg", args.pg, "--batch", str(args.batch), "--only-json"],
+        env=env, capture_output=True, text=True, check=False)
+    if out.returncode != 0:
+        raise SystemExit(f"baseline run failed: {out.stderr.strip()[-2000:]}")
+    (row,) = json.loads(out.stdout.strip().splitlines()[-1])
+    return Result(**row)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--sizes", default="1x7,5x7,10x7,10x1",
@@ -366,6 +382,10 @@ def main() -> None:
                     help="PostgreSQL admin DSN (a fresh database is made per size)")
     ap.add_argument("--batch", type=int, default=200, help="messages per commit_batch")
     ap.add_argument("--json", action="store_true", help="also print the raw results as JSON")
+    ap.add_argument("--baseline-tree", default=None,
+                    help="another checkout (e.g. the main branch) measured at each size just "
+                    "before this one, in the same run; ratios are then this / that")
+    ap.add_argument("--only-json", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
     sizes = [tuple(int(x) for x in s.split("x")) for s in args.sizes.split(",") if s]
     if args.full:
@@ -374,14 +394,37 @@ def main() -> None:
     if pack_rows(check, -2) != [pack_values(r, -2) for r in check]:
         raise SystemExit("pack_rows disagrees with agent.wire.packing.pack_values")
     results: list[Result] = []
+    baseline: list[Result] = []
     with tempfile.TemporaryDirectory(prefix="hc-bench-fleet-") as tmp:
         for backend in args.backends.split(","):
             for homes, days in sizes:
+                if args.baseline_tree:
+                    baseline.append(measure_tree(args.baseline_tree, backend, homes, days, args))
+                    b = baseline[-1]
+                    print(f"baseline {backend} {homes}x{days}: store {b.store_bytes / 1e6:.1f}"
+                          f" MB, report {b.report_s:.2f} s, peak {b.report_rss / 1e6:.0f} MB",
+                          flush=True)
                 r = measure(backend, homes, days, Path(tmp), args.pg, args.batch)
                 results.append(r)
+                if args.only_json:
+                    continue
                 print(f"{backend} {homes}x{days}: {r.messages} msgs filled in {r.fill_s:.1f} s,"
                       f" store {r.store_bytes / 1e6:.1f} MB, report {r.report_s:.2f} s,"
                       f" peak {r.report_rss / 1e6:.0f} MB", flush=True)
+    if args.only_json:
+        print(json.dumps([r.__dict__ for r in results]))
+        return
+    if baseline:
+        print("\n== this code / baseline tree, same sizes, measured alternately ==")
+        print(f"{'backend':>10} {'size':>7} {'store':>7} {'report s':>9} {'peak':>7}"
+              f" {'fill msg/s':>10}")
+        for b, r in zip(baseline, results, strict=True):
+            print(f"{r.backend:>10} {r.homes:>3}x{r.days:<3} {r.store_bytes / b.store_bytes:>7.2f}"
+                  f" {r.report_s / b.report_s:>9.2f} {r.report_rss / b.report_rss:>7.2f}"
+                  f" {(r.messages / r.fill_s) / (b.messages / b.fill_s):>10.2f}")
+        print("baseline tree:", args.baseline_tree)
+        print_results(baseline)
+        print("this code:")
     print("\nINVENTED data (synthesised homes, not measurements). Per home-week = per home"
           " and 7 days; 'x base' = per-home-week cost over the baseline's in this run;"
           " 'w/o queue' = MB per home-week without the export queue (a store without an"
