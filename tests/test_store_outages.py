@@ -172,7 +172,7 @@ def test_version_1_database_migrates_and_backfills_windows(store_url: str,
                    (lost["start_utc"], lost["end_utc"], "{}", "{}", json.dumps(lost)))
     db.close()
     with RecorderStore(store_url, tmp_path / "c") as new:
-        assert new.db.schema_version() == RecorderStore.latest_schema_version() == 2
+        assert new.db.schema_version() == RecorderStore.latest_schema_version() >= 2
         assert [d["device"] for d in new.devices()] == ["dev-1"]
         raw = sorted((w.sources[0], w.start_utc, w.end_utc)
                      for w in new.outage_windows(merged=False))

@@ -265,12 +265,25 @@ def store_size(store: RecorderStore, path: Path | None) -> tuple[int, dict[str, 
     return sum(int(r[1]) for r in rows), {str(r[0]): int(r[1]) for r in rows}
 
 
+# The child reports its own high-water mark: Linux carries the parent's resident size at
+# fork into the child's ru_maxrss (it survives exec), so wait4's figure would include this
+# benchmark's own memory; VmHWM of the child's /proc status is the report's alone.
+_CHILD = ("import atexit, runpy, sys\n"
+          "def hwm():\n"
+          "    for line in open('/proc/self/status'):\n"
+          "        if line.startswith('VmHWM:'):\n"
+          "            sys.stderr.write('HC_BENCH_HWM_KB ' + line.split()[1] + '\\n')\n"
+          "atexit.register(hwm)\n"
+          "sys.argv = ['halfcycle'] + sys.argv[1:]\n"
+          "runpy.run_module('agent.cli.main', run_name='__main__')\n")
+
+
 def run_report(url: str, captures: Path) -> tuple[float, int, int]:
     """``halfcycle report --json`` as a child: (wall s, peak RSS bytes, devices reported)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     with tempfile.TemporaryFile() as out:
         t = time.perf_counter()
-        proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "report", "--store",
+        proc = subprocess.Popen([sys.executable, "-c", _CHILD, "report", "--store",
                                  url, "--captures", str(captures), "--json"],
                                 stdout=out, stderr=subprocess.PIPE, env=env, cwd=ROOT)
         _, status, usage = os.wait4(proc.pid, 0)
@@ -281,7 +294,10 @@ def run_report(url: str, captures: Path) -> tuple[float, int, int]:
             raise SystemExit(f"report failed ({proc.returncode}): {err.strip()}")
         out.seek(0)
         report = json.loads(out.read())
-    return wall, int(usage.ru_maxrss) * 1024, len(report["devices"])
+    hwm = [int(line.split()[1]) for line in err.splitlines()
+           if line.startswith("HC_BENCH_HWM_KB ")]
+    peak_kb = hwm[-1] if hwm else int(usage.ru_maxrss)
+    return wall, peak_kb * 1024, len(report["devices"])
 
 
 def fill(store: RecorderStore, homes: int, days: int, t0: float, batch: int) -> tuple[int, float]:
