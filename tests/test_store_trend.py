@@ -1,11 +1,12 @@
 """Per-second trend kept as packed rows, its accessors, rollups, partitions and the migration
 from the JSON trend of schema versions 1-2. Every store test runs on SQLite and PostgreSQL.
 
-The per-second values are an invented week-end of one split-phase home (made up here, not a
+The per-second values are an invented half hour of one split-phase home (made up here, not a
 measurement). Decoded values are checked against the wire's own row-by-row decoder
 (``agent.wire.codec.summary_arrays``) and rollups against plain numpy over the same seconds
-(``np.count_nonzero``, ``np.min``, ``np.sum``) — common practice for sums and extremes; the
-0.9 / 1.1 pu thresholds are IEEE 1159-2019's sag and swell limits (pub).
+(``np.count_nonzero``, ``np.min``, ``np.sum``; common practice); the 0.9 / 1.1 pu thresholds
+are IEEE 1159's sag and swell limits, 0.95 / 1.05 ANSI C84.1 Range A service (pub; see
+tests/SOURCES.md, "Store rollups").
 """
 
 from __future__ import annotations
