@@ -236,11 +236,11 @@ CREATE INDEX IF NOT EXISTS outage_windows_site ON outage_windows (site, start_ut
 
 
 #: The schema version that keeps per-second trend as packed msgpack rows (older stores are
-#: brought forward by :meth:`RecorderStore._convert_json_trend`).
+#: brought forward by :meth:`RecorderStore._migrate_packed_trend`).
 _PACKED_TREND_VERSION = 3
 #: Per-second trend as the packed arrays received (agent.store.trend), keyed for "one unit
 #: over a period" (primary key) with an index for "all units at one moment". The JSON table
-#: of versions 1-2 is renamed and converted row by row after the migration, then dropped.
+#: of versions 1-2 is renamed, converted row by row and dropped within the migration.
 #: On PostgreSQL the table is partitioned by time (one partition per UTC week, created on
 #: demand by the commit path); dropping old partitions is the retention.
 _TREND_V3_COLUMNS = """
@@ -273,7 +273,9 @@ CREATE INDEX trend_t ON trend (t_utc)
 #: Rollups of the per-second trend, computed at commit time (agent.store.trend.rollup): per
 #: unit, channel and 10-min interval or UTC day, the counts, extremes and sums a verdict over
 #: a period needs. Applied once per message (the commit path deduplicates), so redelivery
-#: changes nothing. Stores older than this are backfilled from their trend rows.
+#: changes nothing. Stores older than this are backfilled from their trend rows. The pu
+#: counts use the unit's nominal when the seconds were committed; the row keeps the first
+#: nominal it was counted against (a unit re-declared mid-interval mixes the two).
 _ROLLUP_VERSION = 4
 _ROLLUP_V4 = """
 CREATE TABLE IF NOT EXISTS trend_rollup (
@@ -304,12 +306,6 @@ _ROLLUP_COUNTS = ("below_085", "below_090", "below_095", "above_105", "above_110
 TREND_PARTITION_S = 7 * 86400
 # Advisory lock serialising partition creation among collectors (arbitrary key, "hcTP").
 _PARTITION_LOCK_KEY = 0x6863_5450
-
-
-def _migrations(dialect: str) -> list[tuple[int, str]]:
-    """Every migration for one dialect (versions 3 and 4 differ per dialect or need it)."""
-    return [*_MIGRATIONS, (_PACKED_TREND_VERSION, _TREND_V3[dialect]),
-            (_ROLLUP_VERSION, _ROLLUP_V4)]
 
 
 @dataclass
