@@ -271,7 +271,8 @@ CREATE TABLE trend ({_TREND_V3_COLUMNS},
 CREATE INDEX trend_t ON trend (t_utc)
 """}
 #: Rollups of the per-second trend, computed at commit time (agent.store.trend.rollup): per
-#: unit, channel and 10-min interval or UTC day, the counts, extremes and sums a verdict over
+#: unit, channel and 10-min interval (UTC days are folded from them when read), the counts,
+#: extremes and sums a verdict over
 #: a period needs. Applied once per message (the commit path deduplicates), so redelivery
 #: changes nothing. Stores older than this are backfilled from their trend rows. The pu
 #: counts use the unit's nominal when the seconds were committed; the row keeps the first
@@ -1521,8 +1522,17 @@ class RecorderStore:
                 start_utc: float | None = None, end_utc: float | None = None
                 ) -> list[dict[str, Any]]:
         """Trend rollups (:class:`agent.store.trend.RollupRow` fields; ``below``/``above``
-        keyed by pu threshold) of one device or all, intervals of ``span_s`` (600 or 86400)
-        starting in ``[start_utc, end_utc)``, ordered by device, time and channel."""
+        keyed by pu threshold) of one device or all, intervals of ``span_s`` (600, or a
+        multiple such as 86400 folded from the 10-min rows) starting in ``[start_utc,
+        end_utc)``, ordered by device, time and channel."""
+        base = trend_codec.SPANS[0]
+        if span_s != base:
+            if span_s <= 0 or span_s % base:
+                raise ValueError(f"span_s must be a multiple of {base}, got {span_s}")
+            lo = None if start_utc is None else math.ceil(start_utc / span_s) * span_s
+            hi = None if end_utc is None else math.ceil(end_utc / span_s) * span_s
+            return trend_codec.fold(self.rollups(device, span_s=base, start_utc=lo,
+                                                 end_utc=hi), span_s)
         conds: list[str] = ["span_s = ?"]
         params: list[Any] = [span_s]
         for cond, value in (("device = ?", device), ("t_utc >= ?", start_utc),

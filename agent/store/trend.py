@@ -17,6 +17,7 @@ figures a verdict over a period needs without reading every second).
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -41,8 +42,9 @@ _SINGLE = ("hz", "imbalance", "flags")
 #: common practice for histogram edges).
 LOW_PU = (0.85, 0.90, 0.95)
 HIGH_PU = (1.05, 1.10)
-#: Rollup spans [s]: 10-min intervals (IEC 61000-4-30 aggregation interval) and UTC days.
-SPANS = (600, 86400)
+#: Rollup span kept at commit time [s]: the 10-min interval (IEC 61000-4-30 aggregation
+#: interval). Longer spans (UTC days) are folded from these rows when read (:func:`fold`).
+SPANS = (600,)
 
 
 def _plain(value: Any) -> Any:
@@ -108,46 +110,32 @@ def _units_many(arrays: Sequence[Sequence[Any]], n: int) -> tuple[I64, BOOL, I64
     """Units, missing masks and exponents of stored packed arrays of ``n`` values each.
 
     The rows were validated against the schema when they arrived, so only what keeps the
-    bit gather inside its buffer is checked here (stream and mask lengths, width range);
-    the full checks are :func:`agent.wire.packing.unpack_units_many`'s.
+    bit gather inside its buffer is checked here (stream and mask lengths, width range), with
+    the headers read column-wise; the full checks are
+    :func:`agent.wire.packing.unpack_units_many`'s.
     """
     count = n - 1
-    mask_len = (n + 7) // 8
-    starts: list[int] = []
-    widths: list[int] = []
-    firsts: list[int] = []
-    exps: list[int] = []
-    chunks: list[bytes] = []
-    masks: list[bytes] = []
-    mask_rows: list[int] = []
-    offset = 0
-    for row, packed in enumerate(arrays):
-        exp, first, width, data = packed[0], packed[1], packed[2], packed[3]
-        if type(width) is not int or not 0 <= width <= MAX_WIDTH or type(data) is not bytes \
-                or len(data) != (count * width + 7) // 8:
-            raise ValueError(f"packed array {row} is malformed")
-        if len(packed) > 4:
-            mask = packed[4]
-            if type(mask) is not bytes or len(mask) != mask_len:
-                raise ValueError(f"packed array {row} has a malformed mask")
-            masks.append(mask)
-            mask_rows.append(row)
-        starts.append(8 * offset)
-        widths.append(width)
-        firsts.append(int(first))
-        exps.append(int(exp))
-        chunks.append(data)
-        offset += len(data)
-    rows = len(firsts)
+    rows = len(arrays)
+    exps, firsts, widths, datas = zip(*[a[:4] for a in arrays], strict=True)
+    head = np.array([widths, firsts], dtype=np.int64)
+    width = head[0]
+    lengths = np.fromiter(map(len, datas), dtype=np.int64, count=rows)
+    if ((width < 0) | (width > MAX_WIDTH)).any() or (lengths != (count * width + 7) // 8).any():
+        raise ValueError("a packed array is malformed")
+    buf = b"".join(datas)  # TypeError for anything but bytes
     units = np.empty((rows, n), dtype=np.int64)
     missing = np.zeros((rows, n), dtype=bool)
-    head = np.array([starts, widths, firsts], dtype=np.int64)[:, :, None]
-    units[:, :1] = head[2]
+    units[:, 0] = head[1]
     if count and rows:
-        z = _gather_bits(b"".join(chunks), head[0], head[1], count)
+        starts = 8 * (np.cumsum(lengths) - lengths)
+        z = _gather_bits(buf, starts[:, None], width[:, None], count)
         np.cumsum((z >> 1) ^ -(z & 1), axis=1, out=units[:, 1:])  # unzigzag, then sum
-        units[:, 1:] += head[2]
-    if masks:
+        units[:, 1:] += head[1][:, None]
+    mask_rows = [i for i, a in enumerate(arrays) if len(a) > 4]
+    if mask_rows:
+        masks = [arrays[i][4] for i in mask_rows]
+        if any(type(m) is not bytes or len(m) != (n + 7) // 8 for m in masks):
+            raise ValueError("a packed array has a malformed mask")
         stacked = np.frombuffer(b"".join(masks), dtype=np.uint8).reshape(len(masks), -1)
         missing[mask_rows] = np.unpackbits(stacked, axis=1, count=n, bitorder="little")
     return units, missing, np.array(exps, dtype=np.int64)
@@ -161,27 +149,20 @@ def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int,
     out: dict[str, Any] = {}
     for name in (*_PER_CHANNEL, *_SINGLE):
         width = nch if name in _PER_CHANNEL else 1
-        values = np.full((rows, width, n), np.nan)
-        if name not in fields:
-            out[name] = values.transpose(0, 2, 1).reshape(rows * n, width)
-            continue
-        packed: list[Sequence[object]] = []
-        where: list[tuple[int, int]] = []
-        for r, body in enumerate(bodies):
-            field = body[name]
-            arrays = field if name in _PER_CHANNEL else [field]
-            if len(arrays) != width:
-                raise ValueError(f"{name}: {len(arrays)} arrays for {width} channels")
-            for c, arr in enumerate(arrays):
-                if arr is not None:
-                    packed.append(arr)
-                    where.append((r, c))
-        if packed:
-            units, missing, exps = _units_many(packed, n)
-            idx = np.array(where)
-            values[idx[:, 0], idx[:, 1]] = _physical(units, missing, exps)
+        values = np.full((rows * width, n), np.nan)
+        if name in fields:
+            # Every (row, channel) array in order; None where the edge sent none.
+            flat = ([a for b in bodies for a in b[name]] if name in _PER_CHANNEL
+                    else [b[name] for b in bodies])
+            if len(flat) != rows * width:
+                raise ValueError(f"{name}: arrays do not match {width} channels")
+            where = [i for i, a in enumerate(flat) if a is not None]
+            if where:
+                packed = flat if len(where) == len(flat) else [flat[i] for i in where]
+                units, missing, exps = _units_many(packed, n)
+                values[where] = _physical(units, missing, exps)
         # (rows, width, n) -> (rows * n, width): row after row, second after second.
-        out[name] = values.transpose(0, 2, 1).reshape(rows * n, width)
+        out[name] = values.reshape(rows, width, n).transpose(0, 2, 1).reshape(rows * n, width)
     t0 = np.array([float(b["t0"]) for b in bodies])
     period = np.array([float(b["period_s"]) for b in bodies])
     out["t"] = (t0[:, None] + period[:, None] * np.arange(n, dtype=np.float64)).ravel()
@@ -355,5 +336,34 @@ def rollup(chunk: TrendChunk, nominal_v: float | None,
     return out
 
 
+def fold(rows: Sequence[Mapping[str, Any]], span_s: int) -> list[dict[str, Any]]:
+    """Rollup rows (dicts as :meth:`RecorderStore.rollups` returns them, one span) folded into
+    intervals of ``span_s`` [s] (a multiple of theirs): counts and sums add, extremes keep
+    the extreme, pu counts add where known. Ordered by device, interval start, channel."""
+    out: dict[tuple[str, float, int], dict[str, Any]] = {}
+
+    def ext(fn: Any, a: float | None, b: float | None) -> float | None:
+        return b if a is None else a if b is None else fn(a, b)
+
+    for r in rows:
+        key = (r["device"], math.floor(r["t_utc"] / span_s) * float(span_s), r["channel"])
+        acc = out.get(key)
+        if acc is None:
+            out[key] = {**r, "t_utc": key[1], "span_s": span_s,
+                        "below": None if r["below"] is None else dict(r["below"]),
+                        "above": None if r["above"] is None else dict(r["above"])}
+            continue
+        for k in ("seconds", "flagged", "sum_v", "sum_sq_v2"):
+            acc[k] += r[k]
+        for k, fn in (("min_v", min), ("max_v", max), ("low_v", min), ("peak_v", max)):
+            acc[k] = ext(fn, acc[k], r[k])
+        if acc["nominal_v"] is None:
+            acc["nominal_v"] = r["nominal_v"]
+        for k in ("below", "above"):
+            if r[k] is not None:
+                acc[k] = {p: (acc[k] or {}).get(p, 0) + c for p, c in r[k].items()}
+    return [out[k] for k in sorted(out)]
+
+
 __all__ = ["ALL_FIELDS", "HIGH_PU", "LOW_PU", "SPANS", "VOLTAGE_FIELDS", "RollupRow",
-           "TrendChunk", "decode_rows", "pack_row", "rollup", "unpack_row"]
+           "TrendChunk", "decode_rows", "fold", "pack_row", "rollup", "unpack_row"]
