@@ -12,6 +12,7 @@ import json
 from pathlib import Path
 from typing import Any
 
+import msgpack
 import numpy as np
 import pytest
 from _store_helpers import pg_database, store_url
@@ -241,7 +242,7 @@ def test_empty_store_and_unreadable_rows(tmp_path: Path) -> None:
         home.trend(np.full(5, 120.0), np.zeros(5), T0)
         empty.commit_batch(home.messages)
         empty.db.run_in_transaction(lambda db: db.execute(
-            "UPDATE trend SET payload = ? WHERE device = 'h9'", ('{"n": "bad"}',)))
+            "UPDATE trend SET data = ? WHERE device = 'h9'", (msgpack.packb({"n": "bad"}),)))
         r = fleet_report(empty, default_nominal_v=120.0)
         assert r["devices"][0]["trend_rows_unreadable"] == 1
         assert "NOT USED: unreadable per-second rows {'h9': 1}" in render_text(r)

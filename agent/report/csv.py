@@ -21,8 +21,8 @@ from collections.abc import Iterator, Sequence
 from datetime import UTC, datetime
 from typing import Any, TextIO
 
-from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore, from_json
+from agent.store.trend import unpack_row
 from agent.wire.codec import summary_arrays
 from agent.wire.errors import WireError
 
@@ -122,11 +122,12 @@ def trend_rows(store: RecorderStore, *, site: str | None = None, unit: str | Non
     where, params = _where([("site = ?", site), ("device = ?", unit),
                             ("t_utc >= ?", None if since is None else since - MAX_SUMMARY_S),
                             ("t_utc < ?", until)])
-    for tr_site, device, epoch, seq, payload in store.db.stream(
-            "SELECT site, device, epoch, seq, payload FROM trend" + where
+    for tr_site, device, epoch, seq, data in store.db.stream(
+            "SELECT site, device, epoch, seq, data FROM trend" + where
             + " ORDER BY t_utc, device, epoch, seq", params, size=100):
         try:
-            a = summary_arrays(from_stored_json(from_json(payload)))
+            a = summary_arrays(unpack_row(store.db.blob(data), device, tr_site, epoch,
+                                          int(seq)))
         except (WireError, KeyError, TypeError, ValueError, IndexError) as exc:
             # Validated at ingest, so only a damaged row gets here: said, not hidden.
             print(f"halfcycle export: skipped trend row {device}/{epoch}/{seq}: summary does "

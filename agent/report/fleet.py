@@ -52,12 +52,16 @@ from agent.report.compliance import (
 )
 from agent.report.power_quality import device_sections
 from agent.site import infer_nominal
-from agent.store.export import from_stored_json
-from agent.store.recorder import RecorderStore, from_json
-from agent.wire.codec import summary_arrays
+from agent.store.recorder import RecorderStore
+from agent.store.trend import TrendChunk
 from agent.wire.records import FLAG_EVENT
 
 REPORT_VERSION = 1
+#: Per-second fields the report reads (the rest of each stored summary stays packed): the
+#: means and Urms(1/2) maxima, the flags, and the frequency only for a unit whose nominal
+#: frequency is not declared (it is then inferred from the median).
+TREND_FIELDS = frozenset(("rms_mean", "rms_max", "flags"))
+_NOMINAL_HZ = (50, 60)
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
 REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
@@ -101,7 +105,7 @@ def _iso(t: float | None) -> str | None:
 
 
 class _Trend:
-    """Per-second values of one device, decoded from its stored summaries."""
+    """Per-second values of one device, from the store's decoded trend chunks."""
 
     def __init__(self) -> None:
         self.t: list[np.ndarray] = []
@@ -112,13 +116,11 @@ class _Trend:
         self.hz: list[np.ndarray] = []
         self.errors = 0
 
-    def add(self, payload: Any) -> None:
-        try:
-            a = summary_arrays(from_stored_json(payload))
-        except (KeyError, TypeError, ValueError, IndexError):
-            self.errors += 1  # counted and shown; one bad row does not hide the rest
-            return
+    def add(self, a: TrendChunk) -> None:
+        self.errors += a.errors  # counted and shown; one bad row does not hide the rest
         keep = a.present
+        if not keep.any():
+            return
         self.t.append(a.t[keep])
         self.mean.append(a.rms_mean[keep])
         self.peak.append(a.rms_max[keep])
@@ -129,10 +131,17 @@ class _Trend:
     def arrays(self) -> dict[str, np.ndarray] | None:
         if not self.t or not sum(x.size for x in self.t):
             return None
+        width = max(x.shape[1] for x in self.mean)
+
+        def cat(parts: list[np.ndarray]) -> np.ndarray:
+            # A unit whose channel count changed: pad the narrower chunks with NaN.
+            return np.concatenate([p if p.shape[1] == width else np.concatenate(
+                [p, np.full((p.shape[0], width - p.shape[1]), np.nan)], axis=1) for p in parts])
+
         t = np.concatenate(self.t)
         order = np.argsort(t, kind="stable")
-        return {"t": t[order], "mean": np.concatenate(self.mean)[order],
-                "peak": np.concatenate(self.peak)[order], "low": np.concatenate(self.low)[order],
+        return {"t": t[order], "mean": cat(self.mean)[order],
+                "peak": cat(self.peak)[order], "low": cat(self.low)[order],
                 "flagged": np.concatenate(self.flagged)[order],
                 "hz": np.concatenate(self.hz)[order]}
 
@@ -158,7 +167,7 @@ def _nominal(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
 
 def _nominal_hz(model: Mapping[str, Any], trend: dict[str, np.ndarray] | None) -> float | None:
     hz = model.get("nominal_hz")
-    if hz in (50, 60, 50.0, 60.0):
+    if hz in _NOMINAL_HZ:
         return float(hz)
     if trend is not None and np.isfinite(trend["hz"]).any():
         med = float(np.nanmedian(trend["hz"]))
@@ -373,29 +382,6 @@ def _first_data(store: RecorderStore, devices: list[dict[str, Any]]) -> dict[str
     return first
 
 
-def _payloads(store: RecorderStore, table: str, device: str, start_utc: float | None,
-              end_utc: float | None) -> list[Any]:
-    """Stored payloads of one device from ``trend`` or ``aggregates`` in the period
-    (read-only SQL; a summary row is kept when its first second lies in the period)."""
-    assert table in ("trend", "aggregates")
-    sql = f"SELECT payload FROM {table} WHERE device = ?"
-    params: list[Any] = [device]
-    if start_utc is not None:
-        sql += " AND t_utc >= ?"
-        params.append(start_utc)
-    if end_utc is not None:
-        sql += " AND t_utc < ?"
-        params.append(end_utc)
-    rows = store.db.query(sql + " ORDER BY t_utc, epoch, seq", tuple(params))
-    out = []
-    for (text,) in rows:
-        try:
-            out.append(from_json(text))
-        except ValueError:
-            out.append(None)  # counted as unreadable by the caller
-    return out
-
-
 def _ten_min(payloads: list[Any]) -> np.ndarray:
     values = []
     for p in payloads:
@@ -466,15 +452,18 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     for dev in devices:
         name = dev["device"]
         models[name] = dev.get("model") or {}
-        trend = _Trend()
-        for payload in _payloads(store, "trend", name, start_utc, end_utc):
-            trend.add(payload)
-        events = by_device.get(name, [])
-        arrays = trend.arrays()
         if end_utc is not None and first_data.get(name, dev.get("first_seen") or 0.0) >= end_utc:
             continue  # not yet monitored in the period
-        aggregates = _payloads(store, "aggregates", name, start_utc, end_utc)
-        sections.append(_device_section(dev, events, arrays, _ten_min(aggregates),
+        # One home at a time: its seconds are decoded chunk by chunk and dropped once its
+        # section is made, so memory follows the largest home, not the fleet.
+        trend = _Trend()
+        fields = TREND_FIELDS if models[name].get("nominal_hz") in _NOMINAL_HZ \
+            else TREND_FIELDS | {"hz"}
+        for chunk in store.trend_arrays(name, start_utc, end_utc, fields=fields):
+            trend.add(chunk)
+        events = by_device.get(name, [])
+        aggregates = store.ten_min_aggregates(name, start_utc, end_utc)
+        sections.append(_device_section(dev, events, trend.arrays(), _ten_min(aggregates),
                                         trend.errors, now,
                                         default_nominal_v, planned_stop_after))
         # Harmonics and flicker verdicts per channel (agent.report.power_quality).

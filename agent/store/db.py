@@ -330,14 +330,15 @@ class Database:
             row = self.query_one("SELECT MAX(version) FROM schema_version")
         return int(row[0]) if row and row[0] is not None else 0
 
-    def migrate(self, migrations: Sequence[tuple[int, str]]) -> int:
+    def migrate(self, migrations: Sequence[tuple[int, str | Callable[[Database], None]]]) -> int:
         """Apply the migrations above the current version; returns the resulting version.
 
         All of it runs in one transaction (DDL is transactional on SQLite and PostgreSQL),
         under PostgreSQL an advisory lock, so a failed migration leaves nothing half done and
         collectors starting together apply it once. Each script is split on ``;`` (scripts
-        hold DDL without semicolons inside statements). A database newer than the code is
-        refused rather than used.
+        hold DDL without semicolons inside statements); a callable script is called with
+        this database inside the same transaction (for a step that must convert rows). A
+        database newer than the code is refused rather than used.
         """
         versions = [v for v, _ in migrations]
         if versions != sorted(set(versions)) or (versions and versions[0] < 1):
@@ -356,6 +357,9 @@ class Database:
             for version, script in migrations:
                 if version <= current:
                     continue
+                if callable(script):
+                    script(self)
+                    script = ""
                 for statement in script.split(";"):
                     if statement.strip():
                         self.execute(statement)

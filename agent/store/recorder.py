@@ -30,17 +30,21 @@ also serialises the capture chunks of one capture (they travel in one stream), s
 from __future__ import annotations
 
 import binascii
+import functools
 import hashlib
 import json
+import math
 import os
 import re
 import time
 import uuid
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import suppress
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NamedTuple
+
+import msgpack
 
 from agent.collect.outages import (
     OutageWindow,
@@ -52,6 +56,7 @@ from agent.collect.outages import (
 from agent.collect.outages import site_outages as _site_outages
 from agent.events.types import Capture, dip_duration_of
 from agent.store import alerts as _alerts
+from agent.store import trend as trend_codec
 from agent.store.db import Database, StoreError, describe_url, first_line
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
@@ -228,9 +233,84 @@ CREATE TABLE IF NOT EXISTS outage_windows (
 );
 CREATE INDEX IF NOT EXISTS outage_windows_site ON outage_windows (site, start_utc)
 """),
-    # Alert rule state, delivery queue and history (agent/store/alerts.py).
-    (3, _alerts.MIGRATION),
 ]
+
+
+#: The schema version that keeps per-second trend as packed msgpack rows (older stores are
+#: brought forward by :meth:`RecorderStore._migrate_packed_trend`).
+_PACKED_TREND_VERSION = 3
+#: Per-second trend as the packed arrays received (agent.store.trend), keyed for "one unit
+#: over a period" (primary key) with an index for "all units at one moment". The JSON table
+#: of versions 1-2 is renamed, converted row by row and dropped within the migration.
+#: On PostgreSQL the table is partitioned by time (one partition per UTC week, created on
+#: demand by the commit path); dropping old partitions is the retention.
+_TREND_V3_COLUMNS = """
+    device TEXT NOT NULL,
+    t_utc {double} NOT NULL,
+    epoch TEXT NOT NULL,
+    seq {bigint} NOT NULL,
+    site TEXT NOT NULL,
+    n INTEGER NOT NULL,
+    data {blob} NOT NULL,
+    received_at {double} NOT NULL"""
+_TREND_V3 = {
+    "sqlite": f"""
+ALTER TABLE trend RENAME TO trend_json;
+DROP INDEX IF EXISTS trend_t;
+CREATE TABLE trend ({_TREND_V3_COLUMNS},
+    PRIMARY KEY (device, t_utc, epoch, seq)
+);
+CREATE INDEX trend_t ON trend (t_utc)
+""",
+    "postgresql": f"""
+ALTER TABLE trend RENAME TO trend_json;
+ALTER TABLE trend_json RENAME CONSTRAINT trend_pkey TO trend_json_pkey;
+DROP INDEX IF EXISTS trend_t;
+CREATE TABLE trend ({_TREND_V3_COLUMNS},
+    PRIMARY KEY (device, t_utc, epoch, seq)
+) PARTITION BY RANGE (t_utc);
+CREATE INDEX trend_t ON trend (t_utc)
+"""}
+#: Rollups of the per-second trend, computed at commit time (agent.store.trend.rollup): per
+#: unit, channel and 10-min interval (UTC days are folded from them when read), the counts,
+#: extremes and sums a verdict over
+#: a period needs. Applied once per message (the commit path deduplicates), so redelivery
+#: changes nothing. Stores older than this are backfilled from their trend rows. The pu
+#: counts use the unit's nominal when the seconds were committed; the row keeps the first
+#: nominal it was counted against (a unit re-declared mid-interval mixes the two).
+_ROLLUP_VERSION = 4
+#: The schema version that added alert rule state, delivery queue and history
+#: (agent/store/alerts.py).
+_ALERTS_VERSION = 5
+_ROLLUP_V4 = """
+CREATE TABLE IF NOT EXISTS trend_rollup (
+    device TEXT NOT NULL,
+    span_s INTEGER NOT NULL,
+    t_utc {double} NOT NULL,
+    channel INTEGER NOT NULL,
+    seconds {bigint} NOT NULL,
+    flagged {bigint} NOT NULL,
+    sum_v {double} NOT NULL,
+    sum_sq_v2 {double} NOT NULL,
+    min_v {double},
+    max_v {double},
+    low_v {double},
+    peak_v {double},
+    nominal_v {double},
+    below_085 {bigint},
+    below_090 {bigint},
+    below_095 {bigint},
+    above_105 {bigint},
+    above_110 {bigint},
+    PRIMARY KEY (device, span_s, t_utc, channel)
+);
+CREATE INDEX IF NOT EXISTS trend_rollup_t ON trend_rollup (span_s, t_utc)
+"""
+_ROLLUP_COUNTS = ("below_085", "below_090", "below_095", "above_105", "above_110")
+#: One PostgreSQL trend partition per UTC week [s].
+TREND_PARTITION_S = 7 * 86400
+# Advisory lock serialising partition creation among collectors (arbitrary key, "hcTP").
+_PARTITION_LOCK_KEY = 0x6863_5450
 
 
 @dataclass
@@ -391,6 +471,50 @@ def write_file_durably(directory: Path, name: str, data: bytes) -> Path:
     return final
 
 
+def _rollup_upsert(dialect: str) -> str:
+    """Upsert of one rollup row that adds counts and sums and keeps the extremes."""
+    least, greatest = ("LEAST", "GREATEST") if dialect == "postgresql" else ("MIN", "MAX")
+    cols = ("device", "span_s", "t_utc", "channel", "seconds", "flagged", "sum_v", "sum_sq_v2",
+            "min_v", "max_v", "low_v", "peak_v", "nominal_v", *_ROLLUP_COUNTS)
+    sets = [f"{c} = r.{c} + excluded.{c}" for c in ("seconds", "flagged", "sum_v", "sum_sq_v2")]
+    # SQLite's two-argument MIN/MAX give NULL if either side is: coalesce both ways first.
+    sets += [f"{c} = {fn}(COALESCE(r.{c}, excluded.{c}), COALESCE(excluded.{c}, r.{c}))"
+             for c, fn in (("min_v", least), ("max_v", greatest), ("low_v", least),
+                           ("peak_v", greatest))]
+    sets.append("nominal_v = COALESCE(r.nominal_v, excluded.nominal_v)")
+    sets += [f"{c} = CASE WHEN r.{c} IS NULL AND excluded.{c} IS NULL THEN NULL"
+             f" ELSE COALESCE(r.{c}, 0) + COALESCE(excluded.{c}, 0) END" for c in _ROLLUP_COUNTS]
+    return (f"INSERT INTO trend_rollup AS r ({', '.join(cols)}) VALUES"
+            f" ({', '.join('?' * len(cols))}) ON CONFLICT (device, span_s, t_utc, channel)"
+            f" DO UPDATE SET {', '.join(sets)}")
+
+
+def _device_nominal(db: Database, device: str) -> float | None:
+    row = db.query_one("SELECT model FROM devices WHERE device = ?", (device,))
+    model = from_json(row[0]) if row else None
+    v = model.get("nominal_v") if isinstance(model, dict) else None
+    return float(v) if isinstance(v, int | float) and not isinstance(v, bool) and v > 0 \
+        else None
+
+
+def _write_rollups(db: Database, summaries: Sequence[tuple[str, Mapping[str, Any]]]) -> None:
+    """Add the seconds of newly committed summaries to their units' rollups (one decode and
+    one reduction per unit and batch)."""
+    by_device: dict[str, list[Mapping[str, Any]]] = {}
+    for device, msg in summaries:
+        by_device.setdefault(device, []).append(msg)
+    rows: list[tuple[Any, ...]] = []
+    for device in sorted(by_device):
+        chunk = trend_codec.decode_rows(by_device[device], trend_codec.VOLTAGE_FIELDS)
+        nominal = _device_nominal(db, device)
+        for r in trend_codec.rollup(chunk, nominal):
+            counts = (*(r.below or (None,) * 3), *(r.above or (None,) * 2))
+            rows.append((device, r.span_s, r.t_utc, r.channel, r.seconds, r.flagged, r.sum_v,
+                         r.sum_sq_v2, r.min_v, r.max_v, r.low_v, r.peak_v, r.nominal_v,
+                         *counts))
+    db.executemany(_rollup_upsert(db.dialect), rows)
+
+
 class _Pending:
     """Rows of a batch written in bulk (``executemany``) rather than one statement each;
     none of them is read back while the batch is applied."""
@@ -400,8 +524,8 @@ class _Pending:
             ("aggregates", "INSERT INTO aggregates (device, epoch, seq, site, kind, t_utc,"
              " duration_s, payload, received_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)"
              " ON CONFLICT DO NOTHING"),
-            ("trend", "INSERT INTO trend (device, epoch, seq, site, t_utc, payload, received_at)"
-             " VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"),
+            ("trend", "INSERT INTO trend (device, t_utc, epoch, seq, site, n, data, received_at)"
+             " VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"),
             ("exports", "INSERT INTO export_queue (kind, device, site, ref, payload, created_at)"
              " VALUES (?, ?, ?, ?, ?, ?)"))
 
@@ -410,15 +534,22 @@ class _Pending:
         self.aggregates: list[tuple[Any, ...]] = []
         self.trend: list[tuple[Any, ...]] = []
         self.exports: list[tuple[Any, ...]] = []
+        # Summaries of the batch for the rollups: (device, decoded message), kept whether or
+        # not the trend itself is kept.
+        self.summaries: list[tuple[str, Mapping[str, Any]]] = []
 
     def mark(self) -> tuple[int, ...]:
-        return tuple(len(getattr(self, name)) for name, _ in self._SQL)
+        return (*(len(getattr(self, name)) for name, _ in self._SQL), len(self.summaries))
 
     def truncate(self, mark: tuple[int, ...]) -> None:
-        for (name, _), n in zip(self._SQL, mark, strict=True):
+        for (name, _), n in zip(self._SQL, mark[:-1], strict=True):
             del getattr(self, name)[n:]
+        del self.summaries[mark[-1]:]
 
     def flush(self, db: Database) -> None:
+        if self.summaries:
+            _write_rollups(db, self.summaries)
+            self.summaries.clear()
         for name, sql in self._SQL:
             rows = getattr(self, name)
             if rows:
@@ -448,6 +579,7 @@ class RecorderStore:
         self._lock_suffix = " FOR UPDATE" if self.db.dialect == "postgresql" else ""
         self._pending = _Pending()
         self.after_commit: AfterCommit | None = None
+        self._weeks: set[int] = set()  # trend partitions known to exist (PostgreSQL)
         if migrate:
             try:
                 self.migrate()
@@ -460,7 +592,7 @@ class RecorderStore:
     def migrate(self) -> int:
         """Bring the schema up to date; safe to run again and from several collectors."""
         before = self.db.schema_version()
-        after = self.db.migrate(_MIGRATIONS)
+        after = self.db.migrate(self._migrations())
         if before < _OUTAGE_WINDOWS_VERSION <= after and before > 0:
             self.db.run_in_transaction(self._backfill_outage_windows)
         return after
@@ -486,9 +618,58 @@ class RecorderStore:
                                          report.get("last_ran"), {**report, "device": device,
                                                                   "site": site}, now)
 
+    def _migrations(self) -> list[tuple[int, str | Callable[[Database], None]]]:
+        return [*_MIGRATIONS, (_PACKED_TREND_VERSION, self._migrate_packed_trend),
+                (_ROLLUP_VERSION, self._migrate_rollups), (_ALERTS_VERSION, _alerts.MIGRATION)]
+
+    def _migrate_packed_trend(self, db: Database) -> None:
+        """Version 3: the JSON trend table becomes ``trend_json``, the packed table takes its
+        place, every JSON row is converted (same identity, time and received time; the
+        message decoded from its stored JSON, bytes restored) and the old table dropped, all
+        in the migration's one transaction."""
+        for statement in _TREND_V3[db.dialect].split(";"):
+            if statement.strip():
+                db.execute(statement)
+        from agent.store.export import from_stored_json
+
+        weeks: set[int] = set()
+        last: tuple[Any, ...] = ("", "", -1)
+        while True:  # keyset pages: a large store is converted without holding it in memory
+            rows = db.query("SELECT device, epoch, seq, site, t_utc, payload, received_at"
+                            " FROM trend_json WHERE (device, epoch, seq) > (?, ?, ?)"
+                            " ORDER BY device, epoch, seq LIMIT 2000", last)
+            if not rows:
+                break
+            out = []
+            for device, epoch, seq, site, t_utc, payload, received_at in rows:
+                msg = from_stored_json(from_json(payload)) or {}
+                t = t_utc if t_utc is not None else _opt_float(msg, "t0", "t_utc", "t")
+                if t is None:  # never stored by the collector (the schema requires t0)
+                    t = float(received_at)
+                n = msg.get("n") if isinstance(msg, dict) else None
+                for week in {math.floor(float(t) / TREND_PARTITION_S)} - weeks:
+                    self._create_partition(db, week)
+                    weeks.add(week)
+                out.append((device, float(t), epoch, int(seq), site,
+                            n if isinstance(n, int) and not isinstance(n, bool) else 0,
+                            trend_codec.pack_row(msg if isinstance(msg, dict) else {}),
+                            received_at))
+            db.executemany(_Pending._SQL[2][1], out)
+            last = tuple(rows[-1][:3])
+        db.execute("DROP TABLE trend_json")
+
+    def _migrate_rollups(self, db: Database) -> None:
+        """Version 4: the rollup table, filled from the trend rows already stored."""
+        for statement in _ROLLUP_V4.split(";"):
+            if statement.strip():
+                db.execute(statement)
+        for (device,) in db.query("SELECT DISTINCT device FROM trend ORDER BY device"):
+            for bodies in self._trend_bodies(db, device, None, None, 1440):
+                _write_rollups(db, [(device, b) for b in bodies if b is not None])
+
     @staticmethod
     def latest_schema_version() -> int:
-        return _MIGRATIONS[-1][0]
+        return _ALERTS_VERSION
 
     @classmethod
     def open_existing(cls, url: str, captures_dir: str | Path) -> RecorderStore:
@@ -530,7 +711,47 @@ class RecorderStore:
         """
         batch = [it if isinstance(it, Item) else Item(message=it) for it in items]
         now = time.time()
+        if self.db.dialect == "postgresql" and self.keep_trend:
+            self._prepare_partitions(batch)
         return self.db.run_in_transaction(lambda db: self._commit(db, batch, now))
+
+    # --- trend partitions (PostgreSQL) ----------------------------------------------------
+
+    def _prepare_partitions(self, batch: Sequence[Item]) -> None:
+        """Create the weekly trend partitions a batch needs in their own short transaction
+        before the batch's (creating one locks the parent table until commit)."""
+        weeks = set()
+        for item in batch:
+            msg = item.message
+            if isinstance(msg, Mapping) and msg.get("type") == "summary":
+                t = msg.get("t0", msg.get("t_utc", msg.get("t")))
+                if isinstance(t, int | float) and not isinstance(t, bool) and math.isfinite(t):
+                    weeks.add(math.floor(t / TREND_PARTITION_S))
+        for week in sorted(weeks - self._weeks):
+            self.db.run_in_transaction(functools.partial(self._create_partition, week=week))
+            self._weeks.add(week)
+
+    def _ensure_partition(self, db: Database, t_utc: float) -> None:
+        """The partition for ``t_utc`` inside the batch's transaction (normally made before
+        by :meth:`_prepare_partitions`; not cached here, the transaction may roll back)."""
+        if db.dialect != "postgresql" or not math.isfinite(t_utc):
+            return
+        week = math.floor(t_utc / TREND_PARTITION_S)
+        if week not in self._weeks:
+            self._create_partition(db, week)
+
+    @staticmethod
+    def _partition_name(week: int) -> str:
+        return f"trend_w{week}" if week >= 0 else f"trend_wm{-week}"
+
+    def _create_partition(self, db: Database, week: int) -> None:
+        if db.dialect != "postgresql":
+            return
+        # Concurrent CREATE ... IF NOT EXISTS can still collide: serialise on a lock.
+        db.execute("SELECT pg_advisory_xact_lock(?)", (_PARTITION_LOCK_KEY,))
+        start, end = week * TREND_PARTITION_S, (week + 1) * TREND_PARTITION_S
+        db.execute(f"CREATE TABLE IF NOT EXISTS {self._partition_name(week)} PARTITION OF trend"
+                   f" FOR VALUES FROM ({start}) TO ({end})")
 
     def _commit(self, db: Database, batch: list[Item], now: float) -> dict[tuple[str, str], int]:
         parsed: list[tuple[Item, tuple[str, str, str, str, int], float]] = []
@@ -706,11 +927,17 @@ class RecorderStore:
                  _opt_float(msg, "duration_s"), text, at))
             self._enqueue(db, kind, device, site, ref, msg, at, text)
         elif kind == "summary":
-            text = to_json(msg)
+            t_utc = _opt_float(msg, "t0", "t_utc", "t")
+            if t_utc is None:
+                raise BadMessage("summary without t0")
             if self.keep_trend:
-                pending.trend.append((device, epoch, seq, site,
-                                      _opt_float(msg, "t0", "t_utc", "t"), text, at))
-            self._enqueue(db, kind, device, site, ref, msg, at, text)
+                n = msg.get("n")
+                pending.trend.append((device, t_utc, epoch, seq, site,
+                                      n if isinstance(n, int) and not isinstance(n, bool) else 0,
+                                      trend_codec.pack_row(msg), at))
+                self._ensure_partition(db, t_utc)
+            pending.summaries.append((device, msg))
+            self._enqueue(db, kind, device, site, ref, msg, at)
         elif kind == "gap":
             first, last = _int(msg, "first_seq"), _int(msg, "last_seq")
             if first > last:
@@ -1114,10 +1341,38 @@ class RecorderStore:
         """Delete per-second trend rows older than ``before_utc`` [s UTC]; returns the count.
 
         Only trend rows are pruned: they have been queued for export when they arrived, and
-        the 10-min aggregates keep the long-term record.
+        the 10-min aggregates and rollups keep the long-term record.
         """
-        return self.db.run_in_transaction(
-            lambda db: db.execute("DELETE FROM trend WHERE t_utc < ?", (before_utc,)).rowcount)
+        return self.drop_trend_before(before_utc)
+
+    def drop_trend_before(self, before_utc: float) -> int:
+        """Retention of the per-second trend: remove every row whose first second is before
+        ``before_utc`` [s UTC]; returns the number of rows removed.
+
+        PostgreSQL: whole weekly partitions that end at or before ``before_utc`` are dropped
+        (no row-by-row delete, no bloat); rows of the partition that holds ``before_utc``
+        are deleted. SQLite: one DELETE over the time index.
+        """
+        def work(db: Database) -> int:
+            removed = 0
+            if db.dialect == "postgresql":
+                parts = db.query(
+                    "SELECT c.relname, pg_get_expr(c.relpartbound, c.oid) FROM pg_inherits i"
+                    " JOIN pg_class c ON c.oid = i.inhrelid WHERE i.inhparent ="
+                    " to_regclass('trend') ORDER BY c.relname")
+                for name, bound in parts:
+                    m = re.search(r"TO \('?(-?[0-9.e+]+)'?\)", str(bound))
+                    if m is None or float(m.group(1)) > before_utc:
+                        continue
+                    row = db.query_one(f"SELECT COUNT(*) FROM {name}")
+                    db.execute(f"DROP TABLE {name}")
+                    removed += int(row[0]) if row else 0
+                    week = math.floor((float(m.group(1)) - 1) / TREND_PARTITION_S)
+                    self._weeks.discard(week)
+            removed += db.execute("DELETE FROM trend WHERE t_utc < ?", (before_utc,)).rowcount
+            return removed
+
+        return self.db.run_in_transaction(work)
 
     def prune_dead_letters(self, before_utc: float) -> int:
         """Delete dead letters received before ``before_utc`` [s UTC]; returns the count."""
@@ -1314,7 +1569,119 @@ class RecorderStore:
         return self._rows("aggregates", device)
 
     def trend(self, device: str | None = None) -> list[dict[str, Any]]:
-        return self._rows("trend", device)
+        """Stored summaries (``payload``: the message as received, bytes as bytes), ordered by
+        device and time; for reading many seconds use :meth:`trend_arrays`."""
+        where, params = ("WHERE device = ?", (device,)) if device else ("", ())
+        rows = self.db.query("SELECT device, epoch, seq, site, t_utc, data FROM trend "
+                             + where + " ORDER BY device, t_utc, epoch, seq", params)
+        return [{"device": r[0], "epoch": r[1], "seq": int(r[2]), "site": r[3], "t_utc": r[4],
+                 "payload": trend_codec.unpack_row(self.db.blob(r[5]), r[0], r[3], r[1],
+                                                   int(r[2]))} for r in rows]
+
+    def _trend_bodies(self, db: Database, device: str, start_utc: float | None,
+                      end_utc: float | None, page: int
+                      ) -> Iterator[list[dict[str, Any] | None]]:
+        """Stored summary bodies of one device in time order, ``page`` rows at a time (keyset
+        paging on the primary key; None for a row that does not unpack)."""
+        last: tuple[Any, ...] | None = None
+        while True:
+            sql = "SELECT t_utc, epoch, seq, data FROM trend WHERE device = ?"
+            params: list[Any] = [device]
+            if start_utc is not None:
+                sql += " AND t_utc >= ?"
+                params.append(start_utc)
+            if end_utc is not None:
+                sql += " AND t_utc < ?"
+                params.append(end_utc)
+            if last is not None:
+                sql += " AND (t_utc, epoch, seq) > (?, ?, ?)"
+                params.extend(last)
+            rows = db.query(sql + " ORDER BY t_utc, epoch, seq LIMIT ?", (*params, page))
+            if not rows:
+                return
+            bodies: list[dict[str, Any] | None] = []
+            for _, _, _, data in rows:
+                try:
+                    body = msgpack.unpackb(db.blob(data), raw=False, strict_map_key=False)
+                    bodies.append(body if isinstance(body, dict) else None)
+                except (ValueError, TypeError, msgpack.UnpackException):
+                    bodies.append(None)
+            yield bodies
+            if len(rows) < page:
+                return
+            last = tuple(rows[-1][:3])
+
+    def trend_arrays(self, device: str, start_utc: float | None = None,
+                     end_utc: float | None = None, *, page: int = 1440,
+                     fields: frozenset[str] = trend_codec.ALL_FIELDS
+                     ) -> Iterator[trend_codec.TrendChunk]:
+        """The per-second trend of one device as numpy arrays, chunk by chunk (``page``
+        summaries each, a day of 60-s summaries by default), in time order; summaries whose
+        first second lies in ``[start_utc, end_utc)`` [s UTC]. Rows that do not decode are
+        counted in each chunk's ``errors``. Values equal
+        :func:`agent.wire.codec.summary_arrays` of each stored message; ``fields`` (see
+        :data:`agent.store.trend.VOLTAGE_FIELDS`) leaves the others NaN, undecoded."""
+        for bodies in self._trend_bodies(self.db, device, start_utc, end_utc, page):
+            yield trend_codec.decode_rows(bodies, fields)
+
+    def ten_min_aggregates(self, device: str, start_utc: float | None = None,
+                           end_utc: float | None = None) -> list[Any]:
+        """Stored aggregate messages of one device whose ``t`` lies in ``[start_utc,
+        end_utc)``, in time order (None for a row that does not parse)."""
+        sql = "SELECT payload FROM aggregates WHERE device = ?"
+        params: list[Any] = [device]
+        if start_utc is not None:
+            sql += " AND t_utc >= ?"
+            params.append(start_utc)
+        if end_utc is not None:
+            sql += " AND t_utc < ?"
+            params.append(end_utc)
+        out: list[Any] = []
+        for (text,) in self.db.query(sql + " ORDER BY t_utc, epoch, seq", tuple(params)):
+            try:
+                out.append(from_json(text))
+            except ValueError:
+                out.append(None)
+        return out
+
+    def rollups(self, device: str | None = None, *, span_s: int = 600,
+                start_utc: float | None = None, end_utc: float | None = None
+                ) -> list[dict[str, Any]]:
+        """Trend rollups (:class:`agent.store.trend.RollupRow` fields; ``below``/``above``
+        keyed by pu threshold) of one device or all, intervals of ``span_s`` (600, or a
+        multiple such as 86400 folded from the 10-min rows) starting in ``[start_utc,
+        end_utc)``, ordered by device, time and channel."""
+        base = trend_codec.SPANS[0]
+        if span_s != base:
+            if span_s <= 0 or span_s % base:
+                raise ValueError(f"span_s must be a multiple of {base}, got {span_s}")
+            lo = None if start_utc is None else math.ceil(start_utc / span_s) * span_s
+            hi = None if end_utc is None else math.ceil(end_utc / span_s) * span_s
+            return trend_codec.fold(self.rollups(device, span_s=base, start_utc=lo,
+                                                 end_utc=hi), span_s)
+        conds: list[str] = ["span_s = ?"]
+        params: list[Any] = [span_s]
+        for cond, value in (("device = ?", device), ("t_utc >= ?", start_utc),
+                            ("t_utc < ?", end_utc)):
+            if value is not None:
+                conds.append(cond)
+                params.append(value)
+        cols = ("device", "t_utc", "channel", "seconds", "flagged", "sum_v", "sum_sq_v2",
+                "min_v", "max_v", "low_v", "peak_v", "nominal_v", *_ROLLUP_COUNTS)
+        rows = self.db.query(f"SELECT {', '.join(cols)} FROM trend_rollup WHERE "
+                             + " AND ".join(conds) + " ORDER BY device, t_utc, channel",
+                             tuple(params))
+        out = []
+        for r in rows:
+            d = dict(zip(cols, r, strict=True))
+            counts = [d.pop(c) for c in _ROLLUP_COUNTS]
+            d["span_s"] = span_s
+            d["below"] = None if counts[0] is None else dict(
+                zip(trend_codec.LOW_PU, map(int, counts[:3]), strict=True))
+            d["above"] = None if counts[3] is None else dict(
+                zip(trend_codec.HIGH_PU, map(int, counts[3:]), strict=True))
+            out.append(d)
+        return out
 
     def _rows(self, table: str, device: str | None) -> list[dict[str, Any]]:
         where, params = ("WHERE device = ?", (device,)) if device else ("", ())
@@ -1380,9 +1747,9 @@ class RecorderStore:
         return int(row[0]) if row else 0
 
 
-_TABLES = ("devices", "streams", "received", "aggregates", "trend", "events", "captures",
-           "capture_chunks", "gaps", "dead_letters", "export_queue", "outage_windows",
-           "alert_state", "alert_queue", "alert_log", "schema_version")
+_TABLES = ("devices", "streams", "received", "aggregates", "trend", "trend_rollup", "events",
+           "captures", "capture_chunks", "gaps", "dead_letters", "export_queue",
+           "outage_windows", "alert_state", "alert_queue", "alert_log", "schema_version")
 
 __all__ = ["BadMessage", "CommitInfo", "ExportRow", "Item", "RecorderStore", "StoreError",
            "envelope", "from_json", "to_json", "write_file_durably"]
