@@ -319,9 +319,12 @@ class SarfiResult:
 
     ``counts[X]`` = Σ Nᵢ, homes with an event below X % (X < 100: dips and interruptions by
     residual) or above X % (X > 100: swells by maximum); ``index[X]`` = counts[X] / N_T.
-    ``itic_count`` / ``semi_count`` count events outside the ITIC curve (no-damage or
-    prohibited region) and outside SEMI F47 (sags 50 ms–1 s only); ``itic``/``semi`` divide
-    them by N_T. ``skipped_open`` events had no end (no duration) and were not counted.
+    ``itic_count`` counts sags (dips and interruptions) below the ITIC curve's lower
+    boundary (no-damage region): SARFI-ITIC as IEEE 1564 defines it, a sag index;
+    ``itic_swell_count`` counts swells above its upper boundary (prohibited region), reported
+    apart. ``semi_count`` counts sags outside SEMI F47 (50 ms–1 s only). ``itic`` /
+    ``itic_swell`` / ``semi`` divide them by N_T. ``skipped_open`` events had no end (no
+    duration) and were not counted.
     """
 
     homes_monitored: int
@@ -332,6 +335,8 @@ class SarfiResult:
     semi_count: int
     semi: float
     skipped_open: int = 0
+    itic_swell_count: int = 0
+    itic_swell: float = 0.0
 
 
 def sarfi(
@@ -352,7 +357,8 @@ def sarfi(
 
     References
     ----------
-    IEEE 1564-2014 SARFI-X = Σ Nᵢ / N_T and SARFI-curve; ITIC curve (2000); SEMI F47.
+    IEEE 1564-2014 SARFI-X = Σ Nᵢ / N_T and SARFI-curve (a sag index: sags below the
+    curve); ITIC curve (2000); SEMI F47.
     """
     if isinstance(homes_monitored, bool) or not isinstance(homes_monitored, int) \
             or homes_monitored < 1:
@@ -365,7 +371,7 @@ def sarfi(
         raise ValueError(f"events come from {len(devices)} homes but only {homes_monitored} "
                          "are monitored")
     counts = {int(x): 0 for x in thresholds}
-    itic_count = semi_count = skipped = 0
+    itic_count = itic_swell_count = semi_count = skipped = 0
     for ev in records:
         duration = ev.duration_s
         if duration is None:
@@ -379,8 +385,10 @@ def sarfi(
                 counts[x] += 1
         # nominal_hz only matters for the cycle-based IEEE 1159 bounds, not ITIC/SEMI.
         result = classify(ev.kind, max(0.0, ev.level_pu), duration, 50.0)
-        if result["itic_region"] in ("no_damage", "prohibited"):
+        if low and result["itic_region"] == "no_damage":
             itic_count += 1
+        elif not low and result["itic_region"] == "prohibited":
+            itic_swell_count += 1
         if result["semi_f47"] == "outside":
             semi_count += 1
     n_t = float(homes_monitored)
@@ -389,4 +397,5 @@ def sarfi(
         index={x: c / n_t for x, c in counts.items()},
         itic_count=itic_count, itic=itic_count / n_t,
         semi_count=semi_count, semi=semi_count / n_t, skipped_open=skipped,
+        itic_swell_count=itic_swell_count, itic_swell=itic_swell_count / n_t,
     )
