@@ -31,6 +31,7 @@ CANDIDATES: dict[tuple[float, str], tuple[float, ...]] = {
 }
 #: A candidate is plausible for a median within this share of it (EN 50160 ±10 % band).
 PLAUSIBLE = 0.10
+_EPS = 1e-9  # 253 / 230 - 1 is 0.1000000000000001 in float64: on the edge is inside
 
 
 def service_for_channels(channels: int) -> str:
@@ -64,11 +65,11 @@ def infer_nominal(median_v: float, nominal_hz: float, service_type: str) -> Nomi
     hz = 60.0 if abs(nominal_hz - 60.0) < abs(nominal_hz - 50.0) else 50.0
     cands = CANDIDATES.get((hz, service_type), CANDIDATES[(hz, "1ph")])
     usual = cands[0]
-    if abs(median_v / usual - 1.0) <= PLAUSIBLE:
+    if abs(median_v / usual - 1.0) <= PLAUSIBLE + _EPS:
         chosen = usual
     else:
         chosen = min(cands, key=lambda n: abs(math.log(median_v / n)))
-    plausible = tuple(n for n in cands if abs(median_v / n - 1.0) <= PLAUSIBLE)
+    plausible = tuple(n for n in cands if abs(median_v / n - 1.0) <= PLAUSIBLE + _EPS)
     return Nominal(chosen, "inferred", plausible or (chosen,))
 
 
