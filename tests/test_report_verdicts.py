@@ -1,4 +1,4 @@
-# ruff: noqa: F811  (pytest fixtures imported from _store_helpers shadow their name)
+
 """The fleet report's verdicts over a store filled through RecorderStore.commit_batch with
 known per-second and 10-min values (invented homes), the issue's probes as regressions.
 

@@ -178,7 +178,7 @@ def test_frequency_en50160_both_sides() -> None:
     f[6] = 47.0  # -6 % = 47 Hz: on the limit, inside "always"
     assert frequency_en50160(t, f, 50.0).details["outside_4_6pct"] == 0
     # 10-s means of per-second values: arithmetic mean of 10 seconds (cp).
-    ts, fs = ten_second_means(MONDAY + np.arange(20.0), np.r_[np.full(10, 50.0),
+    _ts, fs = ten_second_means(MONDAY + np.arange(20.0), np.r_[np.full(10, 50.0),
                                                               np.full(10, 50.2)])
     assert fs.tolist() == pytest.approx([50.0, 50.2])
 

@@ -82,7 +82,7 @@ def test_one_second_at_109_v_is_no_c84_1_failure() -> None:
     t = MONDAY + np.arange(86400.0)
     v = np.full(t.size, 120.0)
     v[5000] = 109.0
-    tw, mw, fw = window_means(t, v, 600.0)
+    tw, mw, _fw = window_means(t, v, 600.0)
     assert tw.size == 144
     assert mw[8] == pytest.approx(np.sqrt((599 * 120.0**2 + 109.0**2) / 600), rel=1e-12)
     got = ansi_c84_1(mw, 120.0, per_second=(t, v))
@@ -97,7 +97,7 @@ def test_two_minutes_at_0_88_pu() -> None:
     t = MONDAY + np.arange(1200.0)
     v = np.full(t.size, 120.0)
     v[60:180] = 105.6
-    tw, mw, _ = window_means(t, v, 600.0)
+    _tw, mw, _ = window_means(t, v, 600.0)
     assert mw[0] == pytest.approx(np.sqrt((120 * 105.6**2 + 480 * 120.0**2) / 600))
     ten = ansi_c84_1(mw, 120.0, per_second=(t, v))
     ex = ten.details["excursions"]
@@ -106,7 +106,7 @@ def test_two_minutes_at_0_88_pu() -> None:
     assert ex["longer_than_60s"][0]["outside_b"] is True and ex["longer_than_600s"] == []
     assert any("longer than 1 min" in n for n in ten.notes)
     # With a 1-min averaging window (configurable, cp) the two minutes are outside Range B.
-    t1, m1, _ = window_means(t, v, 60.0)
+    _t1, m1, _ = window_means(t, v, 60.0)
     one = ansi_c84_1(m1, 120.0, window_s=60.0, per_second=(t, v))
     assert one.verdict == "outside_b" and one.details["range_b"]["time_below_s"] == 120.0
 

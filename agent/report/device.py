@@ -122,7 +122,8 @@ def summarise(c: Mapping[str, Any]) -> str:
     basis = c.get("basis") or {}
     flagged = basis.get("flagged")
     share = basis.get("flagged_share")
-    tail = (f"; {flagged} flagged ({100 * share:.0f} %) judged too" if flagged else "")
+    tail = (f"; {flagged} flagged ({100 * share:.0f} %) judged too" if flagged and share
+            else "")
     if c.get("standard") == "ANSI C84.1":
         a = c["range_a"]
         inside = "-" if a["fraction_inside"] is None else f"{100 * a['fraction_inside']:.1f} %"

@@ -298,7 +298,8 @@ def _ten_min(payloads: list[Any]) -> TenMin:
         if not isinstance(count, int) or count < TEN_MIN_FULL_COUNT \
                 or not isinstance(t, int | float):
             continue
-        thd = p.get("thd") if isinstance(p.get("thd"), list) else []
+        thd_raw = p.get("thd")
+        thd: list[Any] = thd_raw if isinstance(thd_raw, list) else []
         rows.append((float(t), [math.nan if x is None else float(x) for x in p["rms"]],
                      [math.nan if x is None else float(x) for x in thd],
                      bool(p.get("flagged"))))

@@ -128,7 +128,7 @@ def _solar(report: Mapping[str, Any]) -> list[str]:
 
 def _compliance(report: Mapping[str, Any]) -> list[str]:
     lines = ["== Service voltage compliance =="]
-    rows = []
+    rows: list[tuple[Any, ...]] = []
     details: list[str] = []
     for d in report["devices"]:
         c = d.get("compliance")
