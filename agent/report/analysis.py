@@ -236,7 +236,8 @@ def render_table(result: dict[str, Any]) -> str:
     if events:
         clock = bool(result.get("start"))
         lines.append(
-            f"  {'UTC time' if clock else 'start s':>12} {'type':<12} {'ch':<6} {'dur s':>8} {'level V':>8} {'pu':>6}  "
+            f"  {'UTC time' if clock else 'start s':>12} {'type':<12} {'ch':<6} {'dur s':>8} "
+            f"{'level V':>8} {'pu':>6}  "
             f"{'IEEE 1159':<26} {'ITIC':<15} {'F47':<5} {'Se':>5}"
         )
         for e in events:
