@@ -253,10 +253,19 @@ def period_reasons(section: Mapping[str, Any]) -> list[str]:
         reasons.append(f"{e['extreme_v']:.1f} V for {e['duration_s']:.0f} s from {e['start']} "
                        f"(outside {beyond}, sustained > 1 min)")
     inv = section.get("inverter")
-    if inv is not None and inv.get("verdict") in ("trip", "may_trip"):
-        days = [d for d, r in (inv.get("per_day") or {}).items() if r != "ride_through"]
-        reasons.append(f"inverter {inv['verdict'].replace('_', ' ')} "
-                       f"({inv['rule'].split(';')[0]}) on {', '.join(days)}")
+    if inv is not None:
+        # Overvoltage trips are the installer's concern; undervoltage ones follow the sags and
+        # interruptions already listed.
+        over = [e["start"] for e in inv["per_event"]
+                if e["kind"] == "swell" and e["result"] != "ride_through"]
+        over += [e["start"] for e in inv["sustained"] if e["setting"].startswith("OV")]
+        en = inv.get("en50549_1") or {}
+        if en.get("above"):
+            over.append(en["first_above"])
+        if over:
+            days = sorted({str(t)[:10] for t in over if t})
+            reasons.append(f"overvoltage would trip an inverter ({inv['rule']}) on "
+                           f"{', '.join(days)}")
     if section.get("power_loss_events"):
         reasons.append("monitor lost power (event closed by power loss)")
     elif section.get("interruptions"):

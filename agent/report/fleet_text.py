@@ -214,10 +214,14 @@ def _interruptions(report: Mapping[str, Any]) -> list[str]:
     lines = ["== Interruptions (EN 50160 counts; IEEE 1366 indices over homes monitored) =="]
     if i:
         en, ieee = i["en50160"], i["ieee1366"]
-        lines.append(f"EN 50160: {en['short']} short (<= 3 min), {en['long']} long; "
-                     f"IEEE 1366 (sustained > 5 min): SAIFI {ieee['SAIFI']}, SAIDI "
-                     f"{ieee['SAIDI_min']} min, CAIDI {ieee['CAIDI_min']} min, MAIFI "
-                     f"{ieee['MAIFI']} over {i['basis']['homes_monitored']} homes")
+        def show(x: Any, unit: str = "") -> str:
+            return "-" if x is None else f"{x:g}{unit}"
+
+        lines.append(f"EN 50160: {en['short']} short (<= 3 min), {en['long']} long")
+        lines.append(f"IEEE 1366 (sustained > 5 min) over {i['basis']['homes_monitored']} "
+                     f"homes: SAIFI {show(ieee['SAIFI'])}, SAIDI "
+                     f"{show(ieee['SAIDI_min'], ' min')}, CAIDI {show(ieee['CAIDI_min'], ' min')}"
+                     f", MAIFI {show(ieee['MAIFI'])}")
     lines.append("")
     return lines
 
