@@ -197,3 +197,41 @@ def test_interruptions_sarfi_sides_and_contracts(tmp_path: Path, capsys:
     assert text.count(INDICATIVE) == 1 and "category III" in text
     assert main(["report", "--store", url, "--window", "7"]) == 2
     assert "--window" in capsys.readouterr().err
+
+
+def test_a_bad_week_cannot_hide_in_the_store(tmp_path: Path) -> None:
+    # Four calendar weeks of 10-min aggregates at 230 V; the third holds 60 means at 200 V
+    # (60/1008 = 5.95 % outside ±10 % > 5 %, EN 50160 pub). Pooled: 60/4032 = 1.5 % outside,
+    # a pass; per calendar week: the third fails, and so does the period.
+    home = Home("weeks", 230.0, 50.0)
+    for k in range(4 * 1008):
+        home.ten_min(MONDAY + 600.0 * k, (200.0 if 2016 <= k < 2076 else 230.0,))
+    with _store(tmp_path) as s:
+        home.commit(s, MONDAY + 28 * 86400)
+        r = fleet_report(s, now=MONDAY + 28 * 86400)
+    c = _dev(r, "weeks")["compliance"]
+    assert c["band"]["fraction_inside"] == pytest.approx(1 - 60 / 4032, abs=1e-6)
+    assert c["verdict"] == "fail"
+    assert [w["passed"] for w in c["weeks"]] == [True, True, False, True]
+    assert "failing weeks 2026-W25" in c["summary"]
+
+
+def test_split_phase_supply_verdicts(tmp_path: Path) -> None:
+    # Invented 120/240 V home, 20 min of per-second values: legs 123 V and 117 V (NEMA max
+    # deviation 3/120 = 2.5 % ≤ 3 %, from memory), 60.0 Hz (within ±1 %, EN 50160 pub: the
+    # share over less than a year is provisional), THD 2 % (≤ 8 %, 2 of 1008 means:
+    # provisional).
+    t = MONDAY + np.arange(1200.0)
+    home = Home("split", channels=("L1", "L2"))
+    home.trend(t, np.column_stack([np.full(t.size, 123.0), np.full(t.size, 117.0)]))
+    with _store(tmp_path) as s:
+        home.commit(s, t[-1] + 1)
+        r = fleet_report(s, now=t[-1] + 2)
+    sup = _dev(r, "split")["supply"]
+    assert sup["unbalance"]["verdict"] == "pass" and sup["unbalance"]["max"] == 0.025
+    assert "NEMA" in sup["unbalance"]["rule"]
+    assert sup["frequency"]["verdict"] == "provisional_pass"
+    assert sup["frequency"]["basis"]["count"] == 120  # 1200 s = 120 ten-second means
+    assert sup["thd"]["verdict"] == "provisional_pass"
+    # Both legs judged for C84.1: 117 and 123 V inside 114-126 V (pub).
+    assert _dev(r, "split")["compliance"]["verdict"] == "range_a"

@@ -80,9 +80,10 @@ def test_230_v_recording_is_230_v() -> None:
     # Boundaries of the ±10 % plausibility: 253 V keeps 230 V, 253.5 V moves to 240 V.
     assert infer_nominal(253.0, 50.0, "1ph").volts == 230.0
     assert infer_nominal(253.5, 50.0, "1ph").volts == 240.0
-    # 60 Hz never infers a 50-Hz nominal (and the reverse): 220 V at 60 Hz.
-    assert infer_nominal(100.0, 50.0, "1ph").volts == 100.0
+    # Only the detected frequency's nominals: 230 V measured on a 60-Hz three-phase service
+    # is outside 120 V ±10 % and no 60-Hz nominal is 230 V: the nearest 60-Hz one, 277 V.
     assert infer_nominal(230.0, 60.0, "3ph").volts == 277.0
+    assert infer_nominal(100.0, 50.0, "1ph").volts == 100.0
 
 
 def test_undetermined_en50160_on_inferred_nominal() -> None:
