@@ -49,7 +49,7 @@ from agent.report.device import (
     pick_nominal,
 )
 from agent.report.fleet_text import category_tag, render_text
-from agent.report.now import fleet_now
+from agent.report.now import fleet_now, is_planned_stop
 from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore, from_json
 from agent.verdicts import INDICATIVE
@@ -212,9 +212,12 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     last_seen = dev.get("last_seen")
     silent_s = None if last_seen is None else max(0.0, now - float(last_seen))
     compliance = verdicts["compliance"]
-    planned = (dev.get("state") == "offline" and planned_stop_after is not None
-               and dev.get("state_since") is not None
-               and float(dev["state_since"]) >= planned_stop_after)
+    # A planned stop: the agent announced it (its own offline status), or it went offline
+    # inside the caller's maintenance window (planned_stop_after).
+    planned = dev.get("state") == "offline" and (
+        is_planned_stop(dev.get("status") or {})
+        or (planned_stop_after is not None and dev.get("state_since") is not None
+            and float(dev["state_since"]) >= planned_stop_after))
     section = {
         "device": dev["device"], "site": dev["site"], "feeder": model.get("feeder"),
         "state": dev.get("state"), "state_since": _iso(dev.get("state_since")),

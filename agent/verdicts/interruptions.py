@@ -77,6 +77,7 @@ def interruption_stats(windows: Iterable[Mapping[str, Any]], homes_monitored: in
              "MAIFI (sustained > 5 min)", verdict="computed", passed=None, confidence="pub",
         basis={"values": "outage windows (power loss reports, interruption events)",
                "windows": len(merged), "homes_monitored": n,
+               "period": "windows as given (the caller's period; not clipped)",
                "customers": "monitored homes", "major_event_days": "not separated"},
         details={"en50160": {"short": len(short), "long": len(merged) - len(short)},
                  "ieee1366": {"SAIFI": None if saifi is None else round(saifi, 4),

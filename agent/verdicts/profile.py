@@ -78,7 +78,8 @@ def voltage_profile(t_start_utc: npt.ArrayLike, means_v: npt.ArrayLike, band: Ba
     pu = ({k: None if x is None else round(x / nominal_v, 4) for k, x in pct.items()}
           if nominal_v else None)
     return Verdict(
-        rule="voltage profile of 10-min means (descriptive)", verdict="computed",
+        rule=f"voltage profile of {window_s / 60:.0f}-min means (descriptive)",
+        verdict="computed",
         passed=None, confidence="cp",
         basis={"values": f"{window_s / 60:.0f}-min means", "count": int(have.sum()),
                "time_of_day": "UTC hours", "band": None if band is None else band.rule,
