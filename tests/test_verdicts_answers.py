@@ -256,3 +256,28 @@ def test_voltage_profile_percentiles_daily_hourly_and_periods() -> None:
                                             "end": "2026-06-01T08:00:00Z",
                                             "duration_s": 3600.0, "side": "low",
                                             "extreme_v": 112.0}]
+
+
+def test_overvoltage_summary_counts_and_daily_max() -> None:
+    from agent.verdicts.inverter import overvoltage_summary
+
+    # 1.10 pu on 230 V = 253 V: EN 50549-1 10-min mean trip level (from memory).
+    day0 = 1_780_000_000.0 - 1_780_000_000.0 % 86400
+    t = np.concatenate([day0 + np.arange(700.0), day0 + 86400 + np.arange(10.0)])
+    mean = np.full(t.size, 240.0)
+    mean[100:110] = 254.0  # 10 s above 253 V
+    mean[200] = 253.0  # on the limit: not above
+    peak = mean.copy()
+    peak[300] = 270.0  # a swell peak within one second
+    peak[705] = 260.0  # next day's maximum
+    s = overvoltage_summary(t, mean, peak, 230.0)
+    assert s["threshold_v"] == pytest.approx(253.0)
+    assert s["seconds_above"] == 10 and s["seconds_peak_above"] == 12
+    assert s["max_v"] == 270.0 and s["max_pu"] == pytest.approx(270.0 / 230.0)
+    assert [v for _, v in sorted(s["max_per_day"].items())] == [270.0, 260.0]
+    # 700 contiguous seconds give 101 full 10-min moving windows (the next day's 10 s none);
+    # none averages above 253 V: 10 s at 254 V cannot lift a 600-s mean of 240 V past it.
+    assert s["ten_min_means"] == 101 and s["ten_min_above"] == 0
+    # Stored 10-min aggregates are used as given when passed (NaN skipped).
+    s2 = overvoltage_summary(t, mean, None, 230.0, ten_min_means_v=[250.0, 253.5, np.nan])
+    assert s2["ten_min_means"] == 2 and s2["ten_min_above"] == 1

@@ -214,3 +214,14 @@ def test_window_and_moving_means_against_numpy() -> None:
 def test_standard_choice() -> None:
     # Common practice: 60 Hz supplies are judged by ANSI C84.1, 50 Hz ones by EN 50160.
     assert standard_for(120.0, 60.0) == "ansi" and standard_for(230.0, 50.0) == "en50160"
+
+
+def test_runs_split_on_gaps_and_falses() -> None:
+    from agent.verdicts.series import runs
+
+    t = np.array([0.0, 1, 2, 3, 10, 11, 12, 13])
+    m = np.array([True, True, False, True, True, True, False, True])
+    # [0,2) run; index 3 alone (t=3, next t=10 is a gap); [4,6); [7,8).
+    assert runs(t, m, 1.0) == [(0, 2), (3, 4), (4, 6), (7, 8)]
+    assert runs(t, np.zeros(8, bool), 1.0) == []
+    assert runs(t[:1], [True], 1.0) == [(0, 1)]

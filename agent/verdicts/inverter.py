@@ -25,7 +25,7 @@ import numpy as np
 import numpy.typing as npt
 
 from agent.verdicts.base import Verdict
-from agent.verdicts.series import as_f64, day_key, iso, moving_rms_mean, runs
+from agent.verdicts.series import as_f64, day_key, iso, moving_rms_mean, per_day, runs
 
 #: IEEE 1547-2018 default trip settings: category → [(name, side, pu, clearing time s)].
 IEEE1547_DEFAULTS: dict[str, tuple[tuple[str, str, float, float], ...]] = {
@@ -115,11 +115,10 @@ def en50549_ten_min(t_end_utc: npt.ArrayLike, ten_min_means_v: npt.ArrayLike,
     limit = EN50549_TEN_MIN_PU * nominal_v
     above = np.isfinite(v) & (v > limit)
     days: dict[str, dict[str, Any]] = {}
-    for k in np.nonzero(np.isfinite(v))[0]:
-        d = days.setdefault(day_key(float(t[k])), {"means": 0, "above": 0, "max_v": None})
-        d["means"] += 1
-        d["above"] += int(above[k])
-        d["max_v"] = round(max(float(v[k]), d["max_v"] or -np.inf), 3)
+    n_above = per_day(t[above], v[above])
+    for key, (count, _, high, _) in per_day(t, v).items():
+        days[key] = {"means": count, "above": n_above.get(key, (0,))[0],
+                     "max_v": round(high, 3)}
     first = float(t[above][0]) if above.any() else None
     return {"threshold_v": round(limit, 3), "means": int(np.count_nonzero(np.isfinite(v))),
             "above": int(np.count_nonzero(above)), "first_above": iso(first),
@@ -154,14 +153,14 @@ def inverter_trips(events: Sequence[Mapping[str, Any]], nominal_v: float, *,
     EN 50549-1 10-min mean (from memory).
     """
     per_event = []
-    per_day: dict[str, str] = {}
+    by_day: dict[str, str] = {}
     order = ("ride_through", "may_trip", "trip")
 
     def mark(t: float | None, result: str) -> None:
         if t is None:
             return
         key = day_key(t)
-        per_day[key] = max(per_day.get(key, "ride_through"), result, key=order.index)
+        by_day[key] = max(by_day.get(key, "ride_through"), result, key=order.index)
 
     for ev in events:
         level, kind = ev.get("level_pu"), ev.get("kind")
@@ -192,7 +191,7 @@ def inverter_trips(events: Sequence[Mapping[str, Any]], nominal_v: float, *,
             en = en50549_ten_min(ten_min[0], ten_min[1], nominal_v)
             for day, d in en["per_day"].items():
                 if d["above"]:
-                    per_day[day] = "trip"
+                    by_day[day] = "trip"
     results = [e["result"] for e in per_event] + ["trip"] * len(sustained)
     if en is not None and en["above"]:
         results.append("trip")
@@ -212,7 +211,7 @@ def inverter_trips(events: Sequence[Mapping[str, Any]], nominal_v: float, *,
                "event_duration": "time beyond the event threshold (dip_duration_s where "
                "recorded)", "flagged_judged": True},
         details={"per_event": per_event, "sustained": sustained, "en50549_1": en,
-                 "per_day": dict(sorted(per_day.items()))},
+                 "per_day": dict(sorted(by_day.items()))},
         notes=("may_trip: the magnitude passed a setting beyond the event threshold; the "
                "time beyond that setting is at most the event's duration",)
         if verdict == "may_trip" else ())
@@ -259,11 +258,8 @@ def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
     else:
         ten = np.concatenate([moving_rms_mean(t, mean[:, c])[1] for c in range(mean.shape[1])]) \
             if t.size else np.empty(0)
-    per_day: dict[str, float] = {}
     ok = np.isfinite(highest) & np.isfinite(t)
-    for k in np.nonzero(ok)[0]:
-        key = day_key(float(t[k]))
-        per_day[key] = max(per_day.get(key, -np.inf), float(highest[k]))
+    daily = {key: high for key, (_, _, high, _) in per_day(t[ok], highest[ok]).items()}
     max_v = float(highest[ok].max()) if ok.any() else None
     return {
         "threshold_pu": threshold_pu, "threshold_v": limit,
@@ -272,6 +268,6 @@ def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
         "ten_min_means": int(ten.size), "ten_min_above": int(np.count_nonzero(ten > limit)),
         "max_ten_min_v": float(ten.max()) if ten.size else None,
         "max_v": max_v, "max_pu": None if max_v is None else max_v / nominal_v,
-        "max_per_day": per_day,
+        "max_per_day": daily,
         "rule": "EN 50549-1 10-min mean above 1.10 Un (from memory); every value counted",
     }

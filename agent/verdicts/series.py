@@ -109,23 +109,20 @@ def moving_rms_mean(t_utc: npt.ArrayLike, values_v: npt.ArrayLike, window_s: flo
 
 def runs(t_utc: npt.ArrayLike, mask: npt.ArrayLike, period_s: float) -> list[tuple[int, int]]:
     """Index ranges ``[i, j)`` of consecutive True values whose times are contiguous
-    (a gap in time, or a False, ends a run)."""
+    (a gap in time longer than 1.5 periods, or a False, ends a run). Vectorised: one pass of
+    numpy over the whole array."""
     t = as_f64(t_utc).ravel()
     m = np.asarray(mask, bool).ravel()
-    out: list[tuple[int, int]] = []
-    start: int | None = None
-    for i in range(t.size):
-        if m[i] and start is not None and t[i] - t[i - 1] > 1.5 * period_s:
-            out.append((start, i))
-            start = i
-        elif m[i] and start is None:
-            start = i
-        elif not m[i] and start is not None:
-            out.append((start, i))
-            start = None
-    if start is not None:
-        out.append((start, t.size))
-    return out
+    if not m.any():
+        return []
+    # A run starts at a True whose predecessor is False or lies more than 1.5 periods back.
+    gap = np.ones(t.size, bool)
+    gap[1:] = np.diff(t) > 1.5 * period_s
+    starts = np.nonzero(m & (gap | ~np.r_[False, m[:-1]]))[0]
+    # It ends after a True whose successor is False or lies more than 1.5 periods ahead.
+    nxt_gap = np.r_[gap[1:], True]
+    ends = np.nonzero(m & (nxt_gap | ~np.r_[m[1:], False]))[0] + 1
+    return list(zip(starts.tolist(), ends.tolist(), strict=True))
 
 
 def week_start(t_utc: float) -> float:
@@ -136,6 +133,27 @@ def week_start(t_utc: float) -> float:
 def iso_week(t_utc: float) -> str:
     y, w, _ = datetime.fromtimestamp(t_utc, tz=UTC).isocalendar()
     return f"{y}-W{w:02d}"
+
+
+def per_day(t_utc: npt.ArrayLike, values: npt.ArrayLike
+            ) -> dict[str, tuple[int, float, float, int]]:
+    """Per UTC day of the finite values: (count, min, max, day start index) keyed by ISO date;
+    vectorised (one sort), so a month of per-second values costs one numpy pass."""
+    t = as_f64(t_utc).ravel()
+    v = as_f64(values).ravel()
+    ok = np.isfinite(t) & np.isfinite(v)
+    t, v = t[ok], v[ok]
+    if not t.size:
+        return {}
+    day = np.floor(t / 86400.0).astype(np.int64)
+    days, inv = np.unique(day, return_inverse=True)
+    count = np.bincount(inv, minlength=days.size)
+    lo = np.full(days.size, np.inf)
+    hi = np.full(days.size, -np.inf)
+    np.minimum.at(lo, inv, v)
+    np.maximum.at(hi, inv, v)
+    return {day_key(float(d) * 86400.0): (int(c), float(a), float(b), int(d))
+            for d, c, a, b in zip(days, count, lo, hi, strict=True)}
 
 
 def day_key(t_utc: float) -> str:
