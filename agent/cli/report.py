@@ -36,7 +36,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="nominal voltage [V] for homes whose store records none")
     p.add_argument("--since", default=None,
                    help="period start: ISO 8601 UTC time (2026-06-01T00:00Z) or an age such "
-                   "as 7d, 24h, 30m (default: everything stored)")
+                   "as 7d, 24h, 30m (default: everything stored); a unit silent since before "
+                   "the period is still listed, as silent since then")
     p.add_argument("--until", default=None,
                    help="period end (exclusive), same forms (default: no end)")
     p.add_argument("--window", type=float, default=10.0, metavar="MINUTES",

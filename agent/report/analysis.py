@@ -19,14 +19,11 @@ import numpy as np
 from agent.events.types import Event
 from agent.pipeline import Frame
 from agent.report.device import TenMin, compliance, summarise
+from agent.report.now import TEN_MIN_FULL_COUNT
 from agent.verdicts import INDICATIVE
 from agent.verdicts.limits import standard_for
 from agent.verdicts.nominal import Nominal
 from agent.verdicts.series import window_means
-
-#: A 10-min aggregate counts as a 10-min mean with this many 10/12-cycle values (as the fleet
-#: report: 3000 nominal, margin for frequency deviation; common practice).
-TEN_MIN_FULL_COUNT = 2900
 
 
 def infer_frequency(volts: np.ndarray, rate: float) -> float:

@@ -49,7 +49,7 @@ from agent.report.device import (
     pick_nominal,
 )
 from agent.report.fleet_text import category_tag, render_text
-from agent.report.now import fleet_now, is_planned_stop
+from agent.report.now import TEN_MIN_FULL_COUNT, fleet_now, is_planned_stop
 from agent.store.export import from_stored_json
 from agent.store.recorder import RecorderStore, from_json
 from agent.verdicts import INDICATIVE
@@ -63,11 +63,6 @@ REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
 #: missed heartbeats; the edge sends one every 600 s by default and a summary every 60 s).
 SILENT_AFTER_S = 900.0
-#: A stored 10-min aggregate is a 10-min mean when it holds this many 10/12-cycle values:
-#: 600 s of 0.2-s intervals is 3000 at 50 or 60 Hz; 2900 leaves room for frequency
-#: deviation and the resynchronisation at the 10-min tick (IEC 61000-4-30 Ed.3, common
-#: practice for the margin).
-TEN_MIN_FULL_COUNT = 2900
 
 __all__ = ["REPORT_VERSION", "fleet_report", "render_text"]
 
