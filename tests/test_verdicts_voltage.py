@@ -225,3 +225,18 @@ def test_runs_split_on_gaps_and_falses() -> None:
     assert runs(t, m, 1.0) == [(0, 2), (3, 4), (4, 6), (7, 8)]
     assert runs(t, np.zeros(8, bool), 1.0) == []
     assert runs(t[:1], [True], 1.0) == [(0, 1)]
+
+
+def test_no_window_mean_is_no_data_unless_an_excursion_outlasts_the_window() -> None:
+    # 9 min of per-second values (no complete 10-min mean). A 90-s run at 127.5 V (above
+    # Range B 127 V, mem) is listed but decides nothing: no_data, passed null.
+    t = MONDAY + np.arange(540.0)
+    v = np.full(t.size, 120.0)
+    v[100:190] = 127.5
+    _, m, _ = window_means(t, v, 600.0)
+    got = ansi_c84_1(m, 120.0, per_second=(t, v))
+    assert m.size == 0 and got.verdict == "no_data" and got.passed is None
+    assert len(got.details["excursions"]["longer_than_60s"]) == 1
+    # On 1-min means the same run is sustained over whole windows: outside Range B.
+    _, m1, _ = window_means(t, v, 60.0)
+    assert ansi_c84_1(m1, 120.0, window_s=60.0, per_second=(t, v)).verdict == "outside_b"

@@ -159,8 +159,8 @@ def ansi_c84_1(means_v: npt.ArrayLike, nominal_v: float, measurement_point: str 
             if e["outside_b"]:
                 longest_outside["B"] = max(longest_outside["B"], e["duration_s"])
     notes: list[str] = []
-    if a["count"] == 0 and not longest_outside["A"]:
-        verdict = "no_data"
+    if a["count"] == 0 and longest_outside["A"] <= window_s:
+        verdict = "no_data"  # no window mean and no excursion as long as a window
     elif b["passed"] is False or longest_outside["B"] > window_s:
         verdict = "outside_b"
     elif a["passed"] is False or longest_outside["A"] > window_s:
