@@ -92,3 +92,18 @@ def test_bad_inputs() -> None:
         sarfi(WORKED, homes_monitored=3)  # 5 homes have events
     with pytest.raises(ValueError, match="not 100"):
         sarfi(WORKED, homes_monitored=10, thresholds=(100,))
+
+
+def test_sags_judged_on_the_time_below_the_dip_threshold() -> None:
+    # An interruption 0.3 s long (below the interruption threshold) inside a sag 2 s below
+    # the dip threshold (dip_duration_s). IEEE 1564 judges the sag on 2 s: beyond SEMI F47's
+    # 1 s (not counted, pub); on its own 0.3 s it would read outside F47 (0 % < 70 %).
+    own = EventRecord(device="a", site="p", start_utc=T0, end_utc=T0 + 0.3,
+                      kind="interruption", level_pu=0.0)
+    below = EventRecord(device="a", site="p", start_utc=T0, end_utc=T0 + 0.3,
+                        kind="interruption", level_pu=0.0, dip_duration_s=2.0)
+    assert sarfi([own], 1).semi_count == 1
+    assert sarfi([below], 1).semi_count == 0
+    with pytest.raises(ValueError, match="dip_duration_s"):
+        EventRecord(device="a", site="p", start_utc=T0, end_utc=None, kind="dip",
+                    level_pu=0.5, dip_duration_s=-1.0)

@@ -56,6 +56,9 @@ class EventRecord:
     feeder: str | None = None
     transformer: str | None = None
     event_id: str | None = None
+    #: [s] time below the dip threshold where the event recorded it (an interruption's own
+    #: duration is its time below the interruption threshold); IEEE 1564 judges sags on it.
+    dip_duration_s: float | None = None
 
     def __post_init__(self) -> None:
         if self.kind not in EVENT_KINDS:
@@ -69,6 +72,11 @@ class EventRecord:
             raise ValueError(f"end_utc {self.end_utc!r} is before start_utc {self.start_utc}")
         if self.time_error_s is not None and not self.time_error_s >= 0:
             raise ValueError(f"time_error_s must be >= 0, got {self.time_error_s!r}")
+        if self.dip_duration_s is not None and not (
+                isinstance(self.dip_duration_s, int | float)
+                and math.isfinite(self.dip_duration_s) and self.dip_duration_s >= 0):
+            raise ValueError(f"dip_duration_s must be a number >= 0, got "
+                             f"{self.dip_duration_s!r}")
 
     @property
     def duration_s(self) -> float | None:
@@ -81,7 +89,7 @@ class EventRecord:
 
 
 _RECORD_KEYS = ("device", "site", "start_utc", "end_utc", "kind", "level_pu", "time_error_s",
-                "feeder", "transformer", "event_id")
+                "feeder", "transformer", "event_id", "dip_duration_s")
 
 
 def event_record(obj: EventRecord | Mapping[str, Any], *, feeder: str | None = None,
@@ -374,6 +382,9 @@ def sarfi(
     itic_count = itic_swell_count = semi_count = skipped = 0
     for ev in records:
         duration = ev.duration_s
+        if ev.kind in ("dip", "interruption") and ev.dip_duration_s is not None \
+                and duration is not None:
+            duration = ev.dip_duration_s  # the sag's duration below the dip threshold
         if duration is None:
             skipped += 1
             continue

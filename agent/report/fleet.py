@@ -149,8 +149,13 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
     if ev.get("kind") not in EVENT_KINDS or ev.get("start_utc") is None \
             or ev.get("level_pu") is None:
         return None
-    sync = (ev.get("payload") or {}).get("sync") or {}
+    payload = ev.get("payload") or {}
+    sync = payload.get("sync") or {}
     err = sync.get("error_s") if isinstance(sync, Mapping) else None
+    # Newer events record their time below the dip threshold; read it only when sound.
+    dip = payload.get("dip_duration_s")
+    dip_s = float(dip) if isinstance(dip, int | float) and not isinstance(dip, bool) \
+        and math.isfinite(dip) and dip >= 0 else None
     end = ev.get("end_utc") if ev.get("state") == "closed" else None
     if end is not None and end < ev["start_utc"]:
         end = ev["start_utc"]
@@ -162,7 +167,7 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
             time_error_s=float(err) if isinstance(err, int | float) and err >= 0
             and math.isfinite(err) else None,
             feeder=model.get("feeder"), transformer=model.get("transformer"),
-            event_id=ev["event_id"])
+            event_id=ev["event_id"], dip_duration_s=dip_s)
     except ValueError:
         return None
 
