@@ -235,3 +235,25 @@ def test_split_phase_supply_verdicts(tmp_path: Path) -> None:
     assert sup["thd"]["verdict"] == "provisional_pass"
     # Both legs judged for C84.1: 117 and 123 V inside 114-126 V (pub).
     assert _dev(r, "split")["compliance"]["verdict"] == "range_a"
+
+
+def test_now_out_of_range_apart_from_the_period(tmp_path: Path) -> None:
+    # 120 V / 60 Hz home, six 10-min aggregates: five at 120 V, the last at 127.5 V (above
+    # Range B service 127 V, mem). Now (5 min after the last ended): out of range now, by
+    # the last 10-min mean (fleet now, cp); in the period: outside Range B on 10-min means.
+    home = Home("hot")
+    for k in range(6):
+        home.ten_min(MONDAY + 600.0 * k, (127.5 if k == 5 else 120.0,))
+    end = MONDAY + 3600.0
+    with _store(tmp_path) as s:
+        home.commit(s, end)
+        r = fleet_report(s, now=end + 300.0)
+        later = fleet_report(s, now=end + 86400.0)
+    att = {a["device"]: a for a in r["attention"]}["hot"]
+    assert [n["state"] for n in att["now"]] == ["out_of_range"]
+    assert att["now"][0]["since"] == "2026-06-01T00:50:00.000Z"
+    assert "outside ANSI C84.1 Range B service on 10-min means" in att["period"]
+    # A day later the last mean is stale: offline now, the period's verdict unchanged.
+    att = {a["device"]: a for a in later["attention"]}["hot"]
+    assert [n["state"] for n in att["now"]] == ["offline"]
+    assert "outside ANSI C84.1 Range B service on 10-min means" in att["period"]
