@@ -241,3 +241,13 @@ def test_limits_text(swell_wav: Path, capsys: pytest.CaptureFixture[str]) -> Non
     out = capsys.readouterr().out
     assert "limits      EN 50160: fail" in out and "UTC time" in out
     assert out.count("indicative: a home monitor") == 1
+
+
+def test_bundled_limits_point_and_no_data(capsys: pytest.CaptureFixture[str]) -> None:
+    # 60 s hold no 10-min mean: no C84.1 verdict (passed null), the limits still named:
+    # utilization limits 108-125 V for an outlet (ANSI C84.1 Range A, from memory).
+    res = run_json(capsys, "--point", "outlet")
+    c = res["compliance"]
+    assert c["standard"] == "ANSI C84.1" and c["verdict"] == "no_data" and c["passed"] is None
+    assert (c["range_a"]["low_v"], c["range_a"]["high_v"]) == (108.0, 125.0)
+    assert c["basis"]["values"] == "10-min means" and c["point"] == "utilization"

@@ -108,6 +108,9 @@ def test_one_second_at_109_v_and_two_minutes_at_0_88_pu(tmp_path: Path) -> None:
     assert sag_c["verdict"] == "range_a" and sag_c["basis"]["flagged"] == 1
     ex = sag_c["excursions"]["longer_than_60s"]
     assert len(ex) == 1 and ex[0]["duration_s"] == 120.0 and ex[0]["outside_b"] is True
+    # The summary beside the verdict says so too.
+    assert "1 sustained excursion(s) > 1 min outside Range A, 1 outside Range B" \
+        in sag_c["summary"]
     attention = {a["device"]: a for a in r["attention"]}
     assert "105.6 V for 120 s" in " ".join(attention["sag"]["period"])
     # The same store judged on 1-min means (configurable window, cp): outside Range B.

@@ -127,8 +127,12 @@ def summarise(c: Mapping[str, Any]) -> str:
     if c.get("standard") == "ANSI C84.1":
         a = c["range_a"]
         inside = "-" if a["fraction_inside"] is None else f"{100 * a['fraction_inside']:.1f} %"
+        runs = (c.get("excursions") or {}).get("longer_than_60s", [])
+        beyond_b = sum(1 for e in runs if e.get("outside_b"))
+        ex = (f"; {len(runs)} sustained excursion(s) > 1 min outside Range A"
+              + (f", {beyond_b} outside Range B" if beyond_b else "")) if runs else ""
         return (f"{verdict} ({inside} of {basis.get('count', 0)} {basis.get('values')} inside "
-                f"Range A {c['point']} {a['low_v']:.1f}-{a['high_v']:.1f} V{tail})")
+                f"Range A {c['point']} {a['low_v']:.1f}-{a['high_v']:.1f} V{ex}{tail})")
     band = c.get("band") or {}
     inside = "-" if band.get("fraction_inside") is None else \
         f"{100 * band['fraction_inside']:.1f} %"
