@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 from _report_helpers import Home
-from _store_helpers import pg_database, store_url  # noqa: F401
+from _store_helpers import pg_database, store_url  # noqa: F401  (fixtures: SQLite and PostgreSQL)
 
 from agent.cli.main import main
 from agent.report.fleet import fleet_report, render_text
@@ -135,13 +135,13 @@ def test_undeclared_126_6_v_is_not_inferred_as_127_v(tmp_path: Path) -> None:
     assert any("--nominal" in n for n in d["compliance"]["notes"])
 
 
-def test_since_keeps_silent_units_and_now_is_apart(tmp_path: Path) -> None:
+def test_since_keeps_silent_units_and_now_is_apart(store_url: str, tmp_path: Path) -> None:
     # u1 reports throughout; u2 fell silent a day before the period and never came back.
     t = MONDAY + np.arange(1200.0)
     u1, u2 = Home("u1"), Home("u2")
     u1.trend(t, np.full(t.size, 120.0))
     u2.trend(t - 86400 * 2, np.full(t.size, 120.0))
-    with _store(tmp_path) as s:
+    with RecorderStore(store_url, tmp_path / "captures") as s:
         u1.commit(s, t[-1] + 1)
         u2.commit(s, t[0] - 86400 * 2 + 1200)
         r = fleet_report(s, now=t[-1] + 60, start_utc=MONDAY - 3600)
@@ -159,7 +159,7 @@ def test_since_keeps_silent_units_and_now_is_apart(tmp_path: Path) -> None:
     assert "now:" in text and "in the period:" in text and "silent before the period" in text
 
 
-def test_interruptions_sarfi_sides_and_contracts(tmp_path: Path, capsys:
+def test_interruptions_sarfi_sides_and_contracts(store_url: str, tmp_path: Path, capsys:
                                                  pytest.CaptureFixture[str]) -> None:
     h1, h2 = Home("h1"), Home("h2")
     # h1: a 10-min interruption (long; IEEE 1366 sustained) and a 1.21 pu, 0.6 s swell (ITIC
@@ -169,11 +169,11 @@ def test_interruptions_sarfi_sides_and_contracts(tmp_path: Path, capsys:
     h1.event("s1", "swell", MONDAY + 1000, 0.6, 1.21)
     h2.event("d2", "dip", MONDAY + 2000, 0.3, 0.5)
     h2.event("i2", "interruption", MONDAY + 3000, 120.0, 0.0)
-    with _store(tmp_path) as s:
+    with RecorderStore(store_url, tmp_path / "captures") as s:
         h1.commit(s, MONDAY + 4000)
         h2.commit(s, MONDAY + 4000)
         r = fleet_report(s, now=MONDAY + 4100)
-        url = f"sqlite:///{tmp_path / 'r.db'}"
+        url = store_url
     i = r["interruptions"]
     assert i["en50160"] == {"short": 1, "long": 1}
     # IEEE 1366 over N_T = 2 homes: SAIFI 1/2, SAIDI 10 min / 2 = 5 min, CAIDI 10 min,
