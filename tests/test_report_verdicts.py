@@ -1,4 +1,3 @@
-
 """The fleet report's verdicts over a store filled through RecorderStore.commit_batch with
 known per-second and 10-min values (invented homes), the issue's probes as regressions.
 
@@ -17,7 +16,7 @@ from typing import Any
 import numpy as np
 import pytest
 from _report_helpers import Home
-from _store_helpers import pg_database, store_url  # noqa: F401  (fixtures: SQLite and PostgreSQL)
+from _store_helpers import pg_database, store_url
 
 from agent.cli.main import main
 from agent.report.fleet import fleet_report, render_text
@@ -25,6 +24,7 @@ from agent.store.recorder import RecorderStore
 from agent.verdicts import INDICATIVE
 
 MONDAY = 1_780_272_000.0  # 2026-06-01 00:00 UTC, a Monday (an invented period)
+__all__ = ["pg_database", "store_url"]  # fixtures: those tests run on SQLite and PostgreSQL
 
 
 def _store(tmp_path: Path, name: str = "r.db") -> RecorderStore:
