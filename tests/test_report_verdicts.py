@@ -122,7 +122,7 @@ def test_one_second_at_109_v_and_two_minutes_at_0_88_pu(tmp_path: Path) -> None:
 def test_undeclared_126_6_v_is_not_inferred_as_127_v(tmp_path: Path) -> None:
     # Issue probe: no site model, no events: 126.6 V at 60 Hz for 20 min. Inferred among the
     # 60-Hz single-phase nominals: 120 V (126.6 V within its ±10 %), marked inferred;
-    # 126.6 V > 126 V Range A service (pub), < 127 V Range B (mem): range_b.
+    # 126.6 V > 126 V Range A service (pub), < 127 V Range B (from memory): range_b.
     t = MONDAY + np.arange(1200.0)
     home = Home("undeclared")
     home.trend(t, np.full(t.size, 126.6))
@@ -260,3 +260,21 @@ def test_now_out_of_range_apart_from_the_period(tmp_path: Path) -> None:
     att = {a["device"]: a for a in later["attention"]}["hot"]
     assert [n["state"] for n in att["now"]] == ["offline"]
     assert "outside ANSI C84.1 Range B service on 10-min means" in att["period"]
+
+
+def test_event_and_status_fields_read_defensively() -> None:
+    from agent.report.device import EMPTY_TEN_MIN, dip_duration, supply_verdicts
+
+    # Time below the dip threshold: the event row's field, else its payload's, else none.
+    assert dip_duration({"dip_duration_s": 1.5, "payload": {"dip_duration_s": 9.0}}) == 1.5
+    assert dip_duration({"payload": {"dip_duration_s": 2.0}}) == 2.0
+    assert dip_duration({"dip_duration_s": -1.0, "payload": {}}) is None
+    assert dip_duration({"dip_duration_s": True}) is None
+    # THD orders from the edge's status: a sample rate capping the order at 25 names the
+    # rule a partial THD (EN 50160 counts to the 40th, pub).
+    t = MONDAY + np.arange(1200.0)
+    trend = {"t": t, "mean": np.full((t.size, 1), 120.0), "hz": np.full(t.size, 60.0),
+             "thd": np.full((t.size, 1), 0.02), "imbalance": np.full(t.size, np.nan),
+             "flagged": np.zeros(t.size, bool)}
+    sup = supply_verdicts(trend, EMPTY_TEN_MIN, 60.0, "1ph", 1, thd_max_order=25)
+    assert "to order 25 (partial)" in sup["thd"]["rule"] and "unbalance" not in sup

@@ -62,7 +62,7 @@ def test_range_b_boundaries_both_sides(point: str, low: float, high: float) -> N
 
 def test_every_value_judged_flagged_share_stated() -> None:
     # Issue probe: 0.88 pu = 105.6 V as a 10-min mean, flagged by the dip it holds (0.88 <
-    # the 0.90 dip threshold). It is judged: below Range B service 110 V (mem) -> outside_b.
+    # the 0.90 dip threshold). It is judged: below Range B service 110 V (from memory): outside_b.
     v = ansi_c84_1([120.0, 105.6, 120.0], 120.0, flagged=[False, True, False])
     assert v.verdict == "outside_b" and v.passed is False
     assert v.basis["flagged"] == 1 and v.basis["flagged_share"] == pytest.approx(1 / 3, 1e-3)

@@ -145,8 +145,10 @@ def summarise(c: Mapping[str, Any]) -> str:
 
 
 def supply_verdicts(trend: Arrays | None, ten_min: TenMin, hz: float | None, service: str,
-                    channels: int) -> dict[str, Any]:
-    """Frequency, THD and unbalance where the home has the channels (else absent)."""
+                    channels: int, thd_max_order: int | None = None) -> dict[str, Any]:
+    """Frequency, THD and unbalance where the home has the channels (else absent);
+    ``thd_max_order`` the highest harmonic order the edge's THD covers, where known."""
+    order = ten_min.thd_max_order if ten_min.thd_max_order is not None else thd_max_order
     out: dict[str, Any] = {}
     if trend is not None and hz and np.isfinite(trend["hz"]).any():
         t10, f10 = ten_second_means(trend["t"], trend["hz"])
@@ -156,12 +158,11 @@ def supply_verdicts(trend: Arrays | None, ten_min: TenMin, hz: float | None, ser
         out["frequency"] = Verdict(v.rule, v.verdict, v.passed, v.confidence, v.basis,
                                    dict(v.details), notes).as_dict()
     if ten_min.size and np.isfinite(ten_min.thd).any():
-        out["thd"] = thd_en50160(ten_min.t, ten_min.thd,
-                                 max_order=ten_min.thd_max_order).as_dict()
+        out["thd"] = thd_en50160(ten_min.t, ten_min.thd, max_order=order).as_dict()
     elif trend is not None and np.isfinite(trend["thd"]).any():
         t, m, _ = window_means(trend["t"], trend["thd"], 600.0)
         if t.size:
-            out["thd"] = thd_en50160(t, m).as_dict()
+            out["thd"] = thd_en50160(t, m, max_order=order).as_dict()
     if channels >= 3 and service != "120/240" and trend is not None \
             and np.isfinite(trend["imbalance"]).any():
         t, m, _ = window_means(trend["t"], trend["imbalance"], 600.0)
@@ -176,6 +177,16 @@ def supply_verdicts(trend: Arrays | None, ten_min: TenMin, hz: float | None, ser
     return out
 
 
+def dip_duration(ev: Mapping[str, Any]) -> float | None:
+    """An event's time below the dip threshold [s] where the store gives it (the event row,
+    else its payload); None when absent or not a number >= 0 (older events)."""
+    for value in (ev.get("dip_duration_s"), (ev.get("payload") or {}).get("dip_duration_s")):
+        if isinstance(value, int | float) and not isinstance(value, bool) \
+                and math.isfinite(value) and value >= 0:
+            return float(value)
+    return None
+
+
 def event_inputs(events: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
     """Closed events as the inverter verdict reads them; the time below the dip threshold
     where the event recorded it (``dip_duration_s``), else the event's duration."""
@@ -183,10 +194,9 @@ def event_inputs(events: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
     for ev in events:
         if ev.get("state") != "closed" or ev.get("level_pu") is None:
             continue
-        p = ev.get("payload") or {}
         out.append({"event_id": ev.get("event_id"), "kind": ev.get("kind"),
                     "level_pu": ev.get("level_pu"), "duration_s": ev.get("duration_s"),
-                    "dip_duration_s": p.get("dip_duration_s"),
+                    "dip_duration_s": dip_duration(ev),
                     "start_utc": ev.get("start_utc")})
     return out
 
@@ -194,7 +204,8 @@ def event_inputs(events: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
 def device_verdicts(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
                     trend: Arrays | None, ten_min: TenMin, *, nominal: Nominal | None,
                     hz: float | None, point: str, window_s: float = 600.0,
-                    inverter_category: str = "II") -> dict[str, Any]:
+                    inverter_category: str = "II",
+                    thd_max_order: int | None = None) -> dict[str, Any]:
     """Every verdict of one home (plain JSON-ready dicts)."""
     if window_s not in ANSI_WINDOWS_S:
         raise ValueError(f"averaging window must be one of {ANSI_WINDOWS_S} s")
@@ -234,7 +245,7 @@ def device_verdicts(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]
                                                               if ten_min.size else 1)))
     channels = trend["mean"].shape[1] if trend is not None else (
         ten_min.rms.shape[1] if ten_min.size else 0)
-    out["supply"] = supply_verdicts(trend, ten_min, hz, service, channels)
+    out["supply"] = supply_verdicts(trend, ten_min, hz, service, channels, thd_max_order)
     return out
 
 
@@ -279,5 +290,5 @@ def period_reasons(section: Mapping[str, Any]) -> list[str]:
     return reasons
 
 
-__all__ = ["EMPTY_TEN_MIN", "TenMin", "device_verdicts", "iso", "period_reasons",
-           "pick_nominal", "summarise"]
+__all__ = ["EMPTY_TEN_MIN", "TenMin", "device_verdicts", "dip_duration", "iso",
+           "period_reasons", "pick_nominal", "summarise"]

@@ -45,6 +45,7 @@ from agent.report.device import (
     EMPTY_TEN_MIN,
     TenMin,
     device_verdicts,
+    dip_duration,
     period_reasons,
     pick_nominal,
 )
@@ -135,7 +136,7 @@ def _event_row(ev: Mapping[str, Any]) -> dict[str, Any]:
         "event_id": ev["event_id"], "kind": ev.get("kind"), "state": ev.get("state"),
         "start_utc": ev.get("start_utc"), "start": _iso(ev.get("start_utc")),
         "duration_s": _num(ev.get("duration_s"), 4),
-        "dip_duration_s": _num(p.get("dip_duration_s"), 4),
+        "dip_duration_s": _num(dip_duration(ev), 4),
         "level_pu": _num(ev.get("level_pu"), 4),
         "level_v": _num(ev.get("level_v"), 2), "category": category_tag(ev.get("classification")),
         "itic": (ev.get("classification") or {}).get("itic_region"),
@@ -149,13 +150,8 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
     if ev.get("kind") not in EVENT_KINDS or ev.get("start_utc") is None \
             or ev.get("level_pu") is None:
         return None
-    payload = ev.get("payload") or {}
-    sync = payload.get("sync") or {}
+    sync = (ev.get("payload") or {}).get("sync") or {}
     err = sync.get("error_s") if isinstance(sync, Mapping) else None
-    # Newer events record their time below the dip threshold; read it only when sound.
-    dip = payload.get("dip_duration_s")
-    dip_s = float(dip) if isinstance(dip, int | float) and not isinstance(dip, bool) \
-        and math.isfinite(dip) and dip >= 0 else None
     end = ev.get("end_utc") if ev.get("state") == "closed" else None
     if end is not None and end < ev["start_utc"]:
         end = ev["start_utc"]
@@ -167,7 +163,7 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
             time_error_s=float(err) if isinstance(err, int | float) and err >= 0
             and math.isfinite(err) else None,
             feeder=model.get("feeder"), transformer=model.get("transformer"),
-            event_id=ev["event_id"], dip_duration_s=dip_s)
+            event_id=ev["event_id"], dip_duration_s=dip_duration(ev))
     except ValueError:
         return None
 
@@ -198,9 +194,12 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     interruptions = [ev for ev in events if ev.get("kind") == "interruption"]
     partial = [ev for ev in events if (ev.get("payload") or {}).get("partial_outage")]
 
+    order = (dev.get("status") or {}).get("thd_max_order")  # newer edges state it
     verdicts = device_verdicts(model, events, trend, ten_min, nominal=nominal, hz=hz,
                                point=point, window_s=window_s,
-                               inverter_category=inverter_category)
+                               inverter_category=inverter_category,
+                               thd_max_order=order if isinstance(order, int)
+                               and not isinstance(order, bool) else None)
     overvoltage = verdicts["overvoltage"]
     if max_swell is not None and overvoltage is not None and nominal is not None:
         # A swell's own maximum (Urms(1/2)) may exceed any per-second value kept.
