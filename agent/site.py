@@ -2,15 +2,11 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 
 from agent.config import ConfigError, Section
 
 SERVICE_TYPES = ("1ph", "120/240", "120/208", "3ph")
-# Declared supply voltages in use around the world [V, line to neutral] (IEC 60038 and
-# ANSI C84.1 nominal systems); used only where no nominal was declared.
-STANDARD_NOMINALS = (100.0, 110.0, 115.0, 120.0, 127.0, 220.0, 230.0, 240.0, 277.0)
 MEASUREMENT_POINTS = ("service", "outlet")
 # Expected channel count per service type (line-to-neutral voltages measured).
 _CHANNELS = {"1ph": 1, "120/240": 2, "120/208": 3, "3ph": 3}
@@ -92,11 +88,6 @@ class Site:
             transformer=sec.optional("transformer", str),
             labels={str(k): str(v) for k, v in labels.items()},
         )
-
-
-def infer_nominal(rms_v: float) -> float:
-    """Nearest standard nominal voltage to a measured steady RMS value [V] (log distance)."""
-    return min(STANDARD_NOMINALS, key=lambda n: abs(math.log(rms_v / n)))
 
 
 def check_identifier(value: str, path: str | None, key: str) -> str:

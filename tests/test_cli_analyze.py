@@ -182,3 +182,73 @@ def test_wav_needs_a_scale(capsys: pytest.CaptureFixture[str]) -> None:
 def test_console_script_is_installed() -> None:
     out = subprocess.run(["halfcycle", "--version"], capture_output=True, text=True, check=True)
     assert out.stdout.startswith("halfcycle ")
+
+
+def _wav(path: Path, rate: float, volts: np.ndarray, volts_per_count: float) -> None:
+    with wave.open(str(path), "wb") as w:
+        w.setnchannels(1)
+        w.setsampwidth(2)
+        w.setframerate(int(rate))
+        w.writeframes(np.round(volts / volts_per_count).astype("<i2").tobytes())
+
+
+@pytest.fixture(scope="module")
+def swell_wav(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    # Invented: 230 V / 50 Hz, 30 s steady, then 1.12 pu (257.6 V) for 620 s, then 10 s
+    # steady: 660 s holding one complete clock-aligned 10-min interval (0-600 s).
+    rate = 3200.0
+    t = np.arange(int(rate * 660)) / rate
+    amp = np.where((t >= 30.0) & (t < 650.0), 1.12, 1.0)
+    path = tmp_path_factory.mktemp("wav") / "swell.wav"
+    _wav(path, rate, 230 * np.sqrt(2) * amp * np.sin(2 * np.pi * 50.0 * t), 400 / 32768)
+    return path
+
+
+def test_limits_section_and_start_time(swell_wav: Path,
+                                       capsys: pytest.CaptureFixture[str]) -> None:
+    res = run_json(capsys, str(swell_wav), "--volts-per-count", str(400 / 32768),
+                   "--start", "2026-06-01T12:00:00Z")
+    # Inferred among the 50-Hz nominals: the first 2 s read 230 V -> 230 V (IEC 60038).
+    assert res["nominal_v"] == 230.0 and res["nominal_inferred"] is True
+    (swell,) = res["events"]
+    # --start: event times become UTC times of day; start_s stays from the file start.
+    assert swell["start_s"] == pytest.approx(30.0, abs=0.02)
+    assert swell["time_of_day"].startswith("12:00:30.0") or swell["time_of_day"].startswith(
+        "12:00:29.9")
+    assert swell["start"].startswith("2026-06-01T12:00:")
+    c = res["compliance"]
+    # The 10-min mean 12:00-12:10: sqrt((30·230² + 570·257.6²)/600) = 256.3 V > 253 V
+    # (Un +10 %, EN 50160, pub): fails "all within +10 %", certain; the interval overlaps
+    # the swell (flagged) and is judged (flagging serves event statistics).
+    assert c["standard"] == "EN 50160" and c["verdict"] == "fail" and c["passed"] is False
+    assert c["count"] == 1 and c["basis"]["flagged"] == 1
+    assert c["band"]["worst_high_v"] == pytest.approx(
+        np.sqrt((30 * 230.0**2 + 570 * 257.6**2) / 600), abs=0.5)
+    assert c["notes"] and "inferred" in c["notes"][-1]
+    assert res["indicative"].startswith("indicative:")
+    # Without --start, times stay relative and no clock time is given.
+    rel = run_json(capsys, str(swell_wav), "--volts-per-count", str(400 / 32768),
+                   "--nominal", "230")
+    assert "time_of_day" not in rel["events"][0] and rel["start"] is None
+    assert rel["compliance"]["verdict"] == "fail" and not rel["compliance"]["notes"]
+    assert main(["analyze", str(swell_wav), "--volts-per-count", "0.01",
+                 "--start", "noon"]) == 2
+    assert "--start" in capsys.readouterr().err
+
+
+def test_limits_text(swell_wav: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["analyze", str(swell_wav), "--volts-per-count", str(400 / 32768),
+                 "--nominal", "230", "--start", "2026-06-01T12:00:00Z"]) == 0
+    out = capsys.readouterr().out
+    assert "limits      EN 50160: fail" in out and "UTC time" in out
+    assert out.count("indicative: a home monitor") == 1
+
+
+def test_bundled_limits_point_and_no_data(capsys: pytest.CaptureFixture[str]) -> None:
+    # 60 s hold no 10-min mean: no C84.1 verdict (passed null), the limits still named:
+    # utilization limits 108-125 V for an outlet (ANSI C84.1 Range A, from memory).
+    res = run_json(capsys, "--point", "outlet")
+    c = res["compliance"]
+    assert c["standard"] == "ANSI C84.1" and c["verdict"] == "no_data" and c["passed"] is None
+    assert (c["range_a"]["low_v"], c["range_a"]["high_v"]) == (108.0, 125.0)
+    assert c["basis"]["values"] == "10-min means" and c["point"] == "utilization"

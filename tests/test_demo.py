@@ -68,11 +68,15 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     assert sag["worst_level_pu"] == pytest.approx(0.65, abs=0.02)
 
     dev = {d["device"]: d for d in report["devices"]}
-    # Solar home: 126.6 V steady is above ANSI C84.1 Range A service 126 V (pub) and inside
-    # Range B 127 V (from memory); the 1.13 pu swell for 4 s is above 1.10 pu (EN 50549-1
-    # level, from memory) for at least 3 whole seconds.
+    # Solar home: 126.6 V steady for the demo's 40 s. ANSI C84.1 concerns sustained voltages,
+    # judged on 10-min means (common practice): 40 s hold none, so no verdict (passed null)
+    # rather than a verdict on seconds. The 1.13 pu swell for 4 s is above 1.10 pu
+    # (EN 50549-1 level, from memory) for at least 3 whole seconds, and beyond IEEE 1547-2018
+    # OV1 (1.10 pu, 2 s clearing, category II default, pub) longer than its clearing time.
     solar = dev["home-1"]
-    assert solar["compliance"]["verdict"] == "range_b"
+    assert solar["compliance"]["verdict"] == "no_data"
+    assert solar["compliance"]["passed"] is None
+    assert solar["inverter"]["verdict"] == "trip"
     assert solar["overvoltage"]["seconds_above"] >= 3
     assert solar["max_swell"]["level_pu"] == pytest.approx(1.13, abs=0.02)
     # IEEE 1159: 1.13 pu for 4 s (3 s-1 min, 1.1-1.2 pu) is a temporary swell.

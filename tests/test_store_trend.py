@@ -279,8 +279,8 @@ def test_migration_brings_a_json_trend_store_forward(store_url: str, tmp_path: P
     for r in (migrated, again):
         for d in r["devices"]:
             for key in ("first_seen", "last_seen", "last_seen_utc", "silent_s", "state",
-                        "state_since", "attention"):
+                        "state_since", "attention", "now", "attention_now"):
                 d.pop(key, None)
-        for key in ("generated", "period", "attention", "store"):
+        for key in ("generated", "period", "attention", "store", "now"):
             r.pop(key, None)
     assert migrated == again

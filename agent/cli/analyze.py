@@ -6,6 +6,7 @@ import argparse
 import json
 import sys
 from collections.abc import Iterator
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -18,7 +19,8 @@ from agent.events.types import Thresholds
 from agent.pipeline import edge_stages, run
 from agent.report.analysis import AnalysisCollector, infer_frequency, render_table
 from agent.resources import examples_dir
-from agent.site import Site, infer_nominal
+from agent.site import Site
+from agent.verdicts.nominal import infer_nominal, service_for_channels
 
 # The bundled recording of an invented scenario (see agent/examples/README.md).
 EXAMPLE_FILE = "invented-street.wav"
@@ -26,8 +28,6 @@ EXAMPLE_VOLTS_PER_COUNT = 400 / 32768
 EXAMPLE_NOMINAL_V = 120.0
 EXAMPLE_NOMINAL_HZ = 60.0
 EXAMPLE_CHANNELS = ("L1", "L2")
-
-_SERVICE_BY_CHANNELS = {1: "1ph", 2: "120/240", 3: "3ph"}
 
 
 def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -52,8 +52,25 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         default=0.05,
         help="interruption threshold [pu]: 0.05 (EN 50160) or 0.10 (IEEE 1159)",
     )
+    p.add_argument("--start", metavar="ISO-TIME",
+                   help="UTC time of the recording's first sample (2026-06-01T12:00:00Z): event "
+                   "times become times of day and 10-min means align to the clock (default: "
+                   "times stay relative to the file start)")
+    p.add_argument("--point", choices=("service", "outlet"), default="service",
+                   help="where the recording was taken, for the ANSI C84.1 limits (service "
+                   "entrance or a receptacle; default service)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=cmd_analyze)
+
+
+def parse_start(text: str) -> float:
+    """``--start``: an ISO 8601 time (UTC unless it says otherwise) -> UTC seconds."""
+    try:
+        when = datetime.fromisoformat(text.strip().replace("Z", "+00:00").replace("z", "+00:00"))
+    except ValueError:
+        raise UserError(f"--start {text!r}: use an ISO 8601 UTC time such as "
+                        "2026-06-01T12:00:00Z") from None
+    return (when if when.tzinfo else when.replace(tzinfo=UTC)).timestamp()
 
 
 def _open(args: argparse.Namespace) -> tuple[Source, str]:
@@ -114,22 +131,28 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     if args.file is None:
         nominal = nominal or EXAMPLE_NOMINAL_V
         hz = hz or EXAMPLE_NOMINAL_HZ
+    start = parse_start(args.start) if args.start else None
     inferred = nominal is None
+    candidates: tuple[float, ...] = ()
     if nominal is None or hz is None:
         probe_source, _ = _open(args)
         volts = _probe(probe_source)
-        if nominal is None:
-            nominal = infer_nominal(float(np.sqrt(np.mean((volts - volts.mean()) ** 2))))
         if hz is None:
             hz = infer_frequency(volts, info.sample_rate)
+        if nominal is None:
+            # Among the nominals of the detected frequency and the channel count's service
+            # type only; marked inferred (agent.verdicts.nominal).
+            guess = infer_nominal(float(np.sqrt(np.mean((volts - volts.mean()) ** 2))), hz,
+                                  service_for_channels(info.channels))
+            nominal, candidates = guess.volts, guess.candidates
     site = Site(
         nominal_v=float(nominal),
         nominal_hz=float(hz),
-        service_type=_SERVICE_BY_CHANNELS.get(info.channels, "3ph"),
+        service_type=service_for_channels(info.channels),
         channel_names=info.channel_names,
     )
-    timebase = ReplayTimebase(info.sample_rate)
-    collector = AnalysisCollector(rate=info.sample_rate)
+    timebase = ReplayTimebase(info.sample_rate, origin=start or 0.0)
+    collector = AnalysisCollector(rate=info.sample_rate, timebase_origin=start or 0.0)
     stages, _ = edge_stages(
         info,
         site,
@@ -161,6 +184,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         source=label,
         nominal_inferred=inferred,
         duration_s=float(duration),
+        start_utc=start,
+        nominal_candidates=candidates,
+        measurement_point=args.point,
     )
     if args.json:
         json.dump(result, sys.stdout, allow_nan=False)

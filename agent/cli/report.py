@@ -22,9 +22,11 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "report",
         help="fleet report from a recorder store: fleet events, SARFI, compliance, outages",
         description="Reads a recorder store (SQLite or PostgreSQL) and prints the fleet report: "
-        "events seen by many homes at once, IEEE 1564 SARFI, overvoltage and swells, "
-        "ANSI C84.1 / EN 50160 service-voltage compliance, units out of range, offline or "
-        "without power.",
+        "events seen by many homes at once, IEEE 1564 SARFI, overvoltage and swells, would "
+        "the inverter have tripped, ANSI C84.1 / EN 50160 service-voltage compliance, voltage "
+        "profile, frequency / THD / unbalance, interruption statistics, and units out of "
+        "range, offline or without power now and in the period. Verdicts are indicative: a "
+        "home monitor, not a certified instrument.",
     )
     p.add_argument("--store", required=True,
                    help="store URL: sqlite:///path/recorder.db or postgresql://...")
@@ -34,9 +36,16 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="nominal voltage [V] for homes whose store records none")
     p.add_argument("--since", default=None,
                    help="period start: ISO 8601 UTC time (2026-06-01T00:00Z) or an age such "
-                   "as 7d, 24h, 30m (default: everything stored)")
+                   "as 7d, 24h, 30m (default: everything stored); a unit silent since before "
+                   "the period is still listed, as silent since then")
     p.add_argument("--until", default=None,
                    help="period end (exclusive), same forms (default: no end)")
+    p.add_argument("--window", type=float, default=10.0, metavar="MINUTES",
+                   help="ANSI C84.1 averaging window for sustained voltages: 1, 5, 10 or 15 "
+                   "minutes (default 10; common practice)")
+    p.add_argument("--inverter-category", default="II", metavar="CAT",
+                   help="IEEE 1547-2018 abnormal-performance category I, II or III for "
+                   "'would the inverter have tripped' (default II)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=cmd_report)
 
@@ -87,6 +96,10 @@ def _json_safe(value: Any) -> Any:
 def cmd_report(args: argparse.Namespace) -> int:
     if args.nominal is not None and not 50.0 <= args.nominal <= 1000.0:
         raise UserError(f"--nominal {args.nominal}: must be 50..1000 V")
+    if args.window not in (1.0, 5.0, 10.0, 15.0):
+        raise UserError(f"--window {args.window:g}: must be 1, 5, 10 or 15 (minutes)")
+    if args.inverter_category not in ("I", "II", "III"):
+        raise UserError(f"--inverter-category {args.inverter_category}: must be I, II or III")
     now = time.time()
     since = parse_when(args.since, "--since", now) if args.since else None
     until = parse_when(args.until, "--until", now) if args.until else None
@@ -95,7 +108,9 @@ def cmd_report(args: argparse.Namespace) -> int:
     store = open_store(args.store, args.captures)
     try:
         report = fleet_report(store, now=now, default_nominal_v=args.nominal,
-                              start_utc=since, end_utc=until)
+                              start_utc=since, end_utc=until,
+                              averaging_window_s=60.0 * args.window,
+                              inverter_category=args.inverter_category)
     except StoreError as exc:
         raise UserError(f"--store {args.store}: {exc}") from None
     finally:

@@ -56,6 +56,9 @@ class EventRecord:
     feeder: str | None = None
     transformer: str | None = None
     event_id: str | None = None
+    #: [s] time below the dip threshold where the event recorded it (an interruption's own
+    #: duration is its time below the interruption threshold); IEEE 1564 judges sags on it.
+    dip_duration_s: float | None = None
 
     def __post_init__(self) -> None:
         if self.kind not in EVENT_KINDS:
@@ -69,6 +72,11 @@ class EventRecord:
             raise ValueError(f"end_utc {self.end_utc!r} is before start_utc {self.start_utc}")
         if self.time_error_s is not None and not self.time_error_s >= 0:
             raise ValueError(f"time_error_s must be >= 0, got {self.time_error_s!r}")
+        if self.dip_duration_s is not None and not (
+                isinstance(self.dip_duration_s, int | float)
+                and math.isfinite(self.dip_duration_s) and self.dip_duration_s >= 0):
+            raise ValueError(f"dip_duration_s must be a number >= 0, got "
+                             f"{self.dip_duration_s!r}")
 
     @property
     def duration_s(self) -> float | None:
@@ -81,7 +89,7 @@ class EventRecord:
 
 
 _RECORD_KEYS = ("device", "site", "start_utc", "end_utc", "kind", "level_pu", "time_error_s",
-                "feeder", "transformer", "event_id")
+                "feeder", "transformer", "event_id", "dip_duration_s")
 
 
 def event_record(obj: EventRecord | Mapping[str, Any], *, feeder: str | None = None,
@@ -319,9 +327,12 @@ class SarfiResult:
 
     ``counts[X]`` = Σ Nᵢ, homes with an event below X % (X < 100: dips and interruptions by
     residual) or above X % (X > 100: swells by maximum); ``index[X]`` = counts[X] / N_T.
-    ``itic_count`` / ``semi_count`` count events outside the ITIC curve (no-damage or
-    prohibited region) and outside SEMI F47 (sags 50 ms–1 s only); ``itic``/``semi`` divide
-    them by N_T. ``skipped_open`` events had no end (no duration) and were not counted.
+    ``itic_count`` counts sags (dips and interruptions) below the ITIC curve's lower
+    boundary (no-damage region): SARFI-ITIC as IEEE 1564 defines it, a sag index;
+    ``itic_swell_count`` counts swells above its upper boundary (prohibited region), reported
+    apart. ``semi_count`` counts sags outside SEMI F47 (50 ms–1 s only). ``itic`` /
+    ``itic_swell`` / ``semi`` divide them by N_T. ``skipped_open`` events had no end (no
+    duration) and were not counted.
     """
 
     homes_monitored: int
@@ -332,6 +343,8 @@ class SarfiResult:
     semi_count: int
     semi: float
     skipped_open: int = 0
+    itic_swell_count: int = 0
+    itic_swell: float = 0.0
 
 
 def sarfi(
@@ -352,7 +365,8 @@ def sarfi(
 
     References
     ----------
-    IEEE 1564-2014 SARFI-X = Σ Nᵢ / N_T and SARFI-curve; ITIC curve (2000); SEMI F47.
+    IEEE 1564-2014 SARFI-X = Σ Nᵢ / N_T and SARFI-curve (a sag index: sags below the
+    curve); ITIC curve (2000); SEMI F47.
     """
     if isinstance(homes_monitored, bool) or not isinstance(homes_monitored, int) \
             or homes_monitored < 1:
@@ -365,9 +379,12 @@ def sarfi(
         raise ValueError(f"events come from {len(devices)} homes but only {homes_monitored} "
                          "are monitored")
     counts = {int(x): 0 for x in thresholds}
-    itic_count = semi_count = skipped = 0
+    itic_count = itic_swell_count = semi_count = skipped = 0
     for ev in records:
         duration = ev.duration_s
+        if ev.kind in ("dip", "interruption") and ev.dip_duration_s is not None \
+                and duration is not None:
+            duration = ev.dip_duration_s  # the sag's duration below the dip threshold
         if duration is None:
             skipped += 1
             continue
@@ -379,8 +396,10 @@ def sarfi(
                 counts[x] += 1
         # nominal_hz only matters for the cycle-based IEEE 1159 bounds, not ITIC/SEMI.
         result = classify(ev.kind, max(0.0, ev.level_pu), duration, 50.0)
-        if result["itic_region"] in ("no_damage", "prohibited"):
+        if low and result["itic_region"] == "no_damage":
             itic_count += 1
+        elif not low and result["itic_region"] == "prohibited":
+            itic_swell_count += 1
         if result["semi_f47"] == "outside":
             semi_count += 1
     n_t = float(homes_monitored)
@@ -389,4 +408,5 @@ def sarfi(
         index={x: c / n_t for x, c in counts.items()},
         itic_count=itic_count, itic=itic_count / n_t,
         semi_count=semi_count, semi=semi_count / n_t, skipped_open=skipped,
+        itic_swell_count=itic_swell_count, itic_swell=itic_swell_count / n_t,
     )

@@ -1,32 +1,32 @@
 """The fleet report: what a recorder store says about every home and about the street.
 
-:func:`fleet_report` reads a :class:`agent.store.recorder.RecorderStore` (read-only) and
-returns one JSON-ready dict; :func:`render_text` turns it into tables for the three users:
+:func:`fleet_report` reads a :class:`agent.store.recorder.RecorderStore` (read-only), calls
+the pure verdicts (:mod:`agent.verdicts`, composed per home in :mod:`agent.report.device`) and
+returns one JSON-ready dict; :func:`agent.report.fleet_text.render_text` turns it into text.
 
-* utility pilot — "Events seen by many homes at once" (events on different homes that started
-  together, :func:`agent.collect.correlate.group_simultaneous`), IEEE 1564 temporal
-  aggregation and SARFI indices;
-* solar installer — "Overvoltage and swells" (seconds and 10-min means above 1.10 pu, the
-  highest swell per day, ANSI C84.1 / EN 50160 service-voltage compliance);
-* property manager — "Units out of range, offline or without power".
+* utility pilot — events seen by many homes at once, IEEE 1564 temporal aggregation, SARFI
+  (sag side and swell side apart), EN 50160 / IEEE 1366 interruption statistics;
+* solar installer — overvoltage and swells, would the inverter have tripped (IEEE 1547-2018
+  category defaults, EN 50549-1 10-min mean), service-voltage compliance, voltage profile;
+* property manager — the attention list: what is true *now* (offline since, supply out since,
+  out of range in the last 10-min mean, lost power: :func:`agent.report.now.fleet_now`) apart
+  from what happened in the period.
 
-A home's declared nominal voltage comes from its site model in the store (set by
-``RecorderStore.update_device_model``), else from its events (every event message carries
-``nominal_v``), else from ``default_nominal_v``, else it is inferred from its median voltage
-(nearest standard nominal, marked ``inferred``).
+Every verdict is judged on all values (flagged ones included) and states its basis; the
+report carries :data:`agent.verdicts.INDICATIVE` once.
 
 References
 ----------
-ANSI C84.1; EN 50160; EN 50549-1 (10-min mean rule from memory); IEEE 1159-2019 categories;
-IEEE 1564-2014 SARFI-X, SARFI-curve and temporal aggregation (one minute, from memory); ITIC
-curve (2000).
+ANSI C84.1; EN 50160; EN 50549-1 (10-min mean rule from memory); IEEE 1547-2018; IEEE 1366;
+IEEE 1159 categories; IEEE 1564-2014 SARFI-X, SARFI-curve and temporal aggregation (one
+minute, from memory); ITIC curve (2000).
 """
 
 from __future__ import annotations
 
 import math
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from datetime import UTC, datetime
 from typing import Any
 
@@ -41,39 +41,31 @@ from agent.collect.correlate import (
     group_simultaneous,
     sarfi,
 )
-from agent.report.compliance import (
-    ansi_c84_1,
-    en50160_voltage,
-    moving_rms_mean,
-    overvoltage_summary,
-    standard_for,
-    summarise,
-    ten_minute_means,
+from agent.report.device import (
+    EMPTY_TEN_MIN,
+    TenMin,
+    device_verdicts,
+    dip_duration,
+    period_reasons,
+    pick_nominal,
 )
+from agent.report.fleet_text import category_tag, render_text
+from agent.report.now import TEN_MIN_FULL_COUNT, fleet_now, is_planned_stop
 from agent.report.power_quality import device_sections
-from agent.site import infer_nominal
 from agent.store.recorder import RecorderStore
 from agent.store.trend import TrendChunk
+from agent.verdicts import INDICATIVE
+from agent.verdicts.interruptions import interruption_stats
 from agent.wire.records import FLAG_EVENT
 
-REPORT_VERSION = 1
-#: Per-second fields the report reads (the rest of each stored summary stays packed): the
-#: means and Urms(1/2) maxima, the flags, and the frequency only for a unit whose nominal
-#: frequency is not declared (it is then inferred from the median).
-TREND_FIELDS = frozenset(("rms_mean", "rms_max", "flags"))
-_NOMINAL_HZ = (50, 60)
+REPORT_VERSION = 2
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
 REPORT_SARFI = (90, 70, 50, 10, 110, 120, 140)
 #: A device not heard from for this long [s] is called silent (common practice: a few
 #: missed heartbeats; the edge sends one every 600 s by default and a summary every 60 s).
 SILENT_AFTER_S = 900.0
-#: A stored 10-min aggregate is a 10-min mean when it holds this many 10/12-cycle values:
-#: 600 s of 0.2-s intervals is 3000 at 50 or 60 Hz; 2900 leaves room for frequency
-#: deviation and the resynchronisation at the 10-min tick (IEC 61000-4-30 Ed.3, common
-#: practice for the margin).
-TEN_MIN_FULL_COUNT = 2900
 
-
+__all__ = ["REPORT_VERSION", "fleet_report", "render_text"]
 
 
 def _num(x: Any, nd: int = 4) -> float | None:
@@ -86,17 +78,6 @@ def _num(x: Any, nd: int = 4) -> float | None:
     return round(f, nd) if math.isfinite(f) else None
 
 
-def category_tag(classification: Mapping[str, Any] | None) -> str:
-    """IEEE 1159 category with its duration class, e.g. ``momentary sag``."""
-    c = classification or {}
-    cat = c.get("ieee1159_category")
-    if not cat:
-        return "unclassified"
-    dur = c.get("ieee1159_duration_class")
-    return f"{dur} {cat}" if dur and dur != cat and cat in ("sag", "swell", "interruption") \
-        else str(cat)
-
-
 def _iso(t: float | None) -> str | None:
     if t is None or not math.isfinite(t):
         return None
@@ -107,67 +88,37 @@ def _iso(t: float | None) -> str | None:
 class _Trend:
     """Per-second values of one device, from the store's decoded trend chunks."""
 
+    FIELDS = ("t", "mean", "peak", "low", "flagged", "hz", "thd", "imbalance")
+
     def __init__(self) -> None:
-        self.t: list[np.ndarray] = []
-        self.mean: list[np.ndarray] = []
-        self.peak: list[np.ndarray] = []
-        self.low: list[np.ndarray] = []
-        self.flagged: list[np.ndarray] = []
-        self.hz: list[np.ndarray] = []
+        self.parts: dict[str, list[np.ndarray]] = {k: [] for k in self.FIELDS}
         self.errors = 0
 
     def add(self, a: TrendChunk) -> None:
         self.errors += a.errors  # counted and shown; one bad row does not hide the rest
         keep = a.present
-        if not keep.any():
-            return
-        self.t.append(a.t[keep])
-        self.mean.append(a.rms_mean[keep])
-        self.peak.append(a.rms_max[keep])
-        self.low.append(a.rms_min[keep])
-        self.flagged.append((a.flags[keep] & FLAG_EVENT) != 0)
-        self.hz.append(a.hz[keep])
+        for name, arr in (("t", a.t), ("mean", a.rms_mean), ("peak", a.rms_max),
+                          ("low", a.rms_min), ("flagged", (a.flags & FLAG_EVENT) != 0),
+                          ("hz", a.hz), ("thd", a.thd), ("imbalance", a.imbalance)):
+            self.parts[name].append(arr[keep])
 
     def arrays(self) -> dict[str, np.ndarray] | None:
-        if not self.t or not sum(x.size for x in self.t):
+        if not sum(x.size for x in self.parts["t"]):
             return None
-        width = max(x.shape[1] for x in self.mean)
-
-        def cat(parts: list[np.ndarray]) -> np.ndarray:
-            # A unit whose channel count changed: pad the narrower chunks with NaN.
-            return np.concatenate([p if p.shape[1] == width else np.concatenate(
-                [p, np.full((p.shape[0], width - p.shape[1]), np.nan)], axis=1) for p in parts])
-
-        t = np.concatenate(self.t)
-        order = np.argsort(t, kind="stable")
-        return {"t": t[order], "mean": cat(self.mean)[order],
-                "peak": cat(self.peak)[order], "low": cat(self.low)[order],
-                "flagged": np.concatenate(self.flagged)[order],
-                "hz": np.concatenate(self.hz)[order]}
-
-
-def _nominal(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
-             trend: dict[str, np.ndarray] | None,
-             default_nominal_v: float | None) -> tuple[float | None, str]:
-    v = model.get("nominal_v")
-    if isinstance(v, int | float) and v > 0:
-        return float(v), "declared"
-    for ev in events:
-        nv = (ev.get("payload") or {}).get("nominal_v")
-        if isinstance(nv, int | float) and nv > 0:
-            return float(nv), "from events"
-    if default_nominal_v:
-        return float(default_nominal_v), "assumed"
-    if trend is not None:
-        med = float(np.nanmedian(trend["mean"])) if np.isfinite(trend["mean"]).any() else math.nan
-        if math.isfinite(med) and med > 0:
-            return infer_nominal(med), "inferred"
-    return None, "unknown"
+        width = max(x.shape[1] for x in self.parts["mean"])
+        out = {}
+        for name, chunks in self.parts.items():
+            if chunks[0].ndim == 2:  # channel counts may differ between rows: pad with NaN
+                chunks = [np.pad(c, ((0, 0), (0, width - c.shape[1])),
+                                 constant_values=np.nan) for c in chunks]
+            out[name] = np.concatenate(chunks)
+        order = np.argsort(out["t"], kind="stable")
+        return {k: v[order] for k, v in out.items()}
 
 
 def _nominal_hz(model: Mapping[str, Any], trend: dict[str, np.ndarray] | None) -> float | None:
     hz = model.get("nominal_hz")
-    if hz in _NOMINAL_HZ:
+    if hz in (50, 60, 50.0, 60.0):
         return float(hz)
     if trend is not None and np.isfinite(trend["hz"]).any():
         med = float(np.nanmedian(trend["hz"]))
@@ -180,7 +131,9 @@ def _event_row(ev: Mapping[str, Any]) -> dict[str, Any]:
     return {
         "event_id": ev["event_id"], "kind": ev.get("kind"), "state": ev.get("state"),
         "start_utc": ev.get("start_utc"), "start": _iso(ev.get("start_utc")),
-        "duration_s": _num(ev.get("duration_s"), 4), "level_pu": _num(ev.get("level_pu"), 4),
+        "duration_s": _num(ev.get("duration_s"), 4),
+        "dip_duration_s": _num(dip_duration(ev), 4),
+        "level_pu": _num(ev.get("level_pu"), 4),
         "level_v": _num(ev.get("level_v"), 2), "category": category_tag(ev.get("classification")),
         "itic": (ev.get("classification") or {}).get("itic_region"),
         "partial_outage": bool(p.get("partial_outage")), "ended_by": p.get("ended_by"),
@@ -206,18 +159,19 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
             time_error_s=float(err) if isinstance(err, int | float) and err >= 0
             and math.isfinite(err) else None,
             feeder=model.get("feeder"), transformer=model.get("transformer"),
-            event_id=ev["event_id"])
+            event_id=ev["event_id"], dip_duration_s=dip_duration(ev))
     except ValueError:
         return None
 
 
 def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
-                    trend: dict[str, np.ndarray] | None, ten_min: np.ndarray,
+                    trend: dict[str, np.ndarray] | None, ten_min: TenMin,
                     trend_errors: int, now: float, default_nominal_v: float | None,
-                    planned_stop_after: float | None) -> dict[str, Any]:
+                    planned_stop_after: float | None, window_s: float,
+                    inverter_category: str) -> dict[str, Any]:
     model = dev.get("model") or {}
-    nominal, nominal_source = _nominal(model, events, trend, default_nominal_v)
     hz = _nominal_hz(model, trend)
+    nominal = pick_nominal(model, events, trend, ten_min, hz, default_nominal_v)
     point = model.get("measurement_point") or "service"
     if point not in ("service", "outlet"):
         point = "service"
@@ -236,68 +190,38 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     interruptions = [ev for ev in events if ev.get("kind") == "interruption"]
     partial = [ev for ev in events if (ev.get("payload") or {}).get("partial_outage")]
 
-    compliance: dict[str, Any] | None = None
-    overvoltage: dict[str, Any] | None = None
-    standard = standard_for(nominal, hz) if nominal else None
-    if nominal:
-        compliance = _compliance(standard or "ansi", nominal, point, trend, ten_min)
-    if nominal and trend is not None:
-        if ten_min.size:
-            ten_means = ten_min.ravel()
-        else:  # 10-min moving means of each channel from the per-second values
-            ten_means = np.concatenate([moving_rms_mean(trend["t"], trend["mean"][:, c])[1]
-                                        for c in range(trend["mean"].shape[1])])
-        overvoltage = overvoltage_summary(
-            np.repeat(trend["t"][:, None], trend["mean"].shape[1], axis=1).ravel(),
-            trend["mean"].ravel(), trend["peak"].ravel(), nominal, ten_min_means_v=ten_means)
-        # Seconds counted once however many channels were above.
-        limit = overvoltage["threshold_v"]
-        overvoltage["seconds_above"] = int(np.count_nonzero(
-            np.nanmax(np.where(np.isnan(trend["mean"]), -np.inf, trend["mean"]), axis=1)
-            > limit))
-        overvoltage["seconds_peak_above"] = int(np.count_nonzero(
-            np.nanmax(np.where(np.isnan(trend["peak"]), -np.inf, trend["peak"]), axis=1)
-            > limit))
-
-    if max_swell is not None and overvoltage is not None and nominal:
+    order = (dev.get("status") or {}).get("thd_max_order")  # newer edges state it
+    verdicts = device_verdicts(model, events, trend, ten_min, nominal=nominal, hz=hz,
+                               point=point, window_s=window_s,
+                               inverter_category=inverter_category,
+                               thd_max_order=order if isinstance(order, int)
+                               and not isinstance(order, bool) else None)
+    overvoltage = verdicts["overvoltage"]
+    if max_swell is not None and overvoltage is not None and nominal is not None:
         # A swell's own maximum (Urms(1/2)) may exceed any per-second value kept.
         day = _iso(max_swell["start_utc"])
         if day:
             key = day[:10]
-            v = float(max_swell["level_pu"]) * nominal
+            v = float(max_swell["level_pu"]) * nominal.volts
             overvoltage["max_per_day"][key] = max(overvoltage["max_per_day"].get(key, v), v)
     last_seen = dev.get("last_seen")
     silent_s = None if last_seen is None else max(0.0, now - float(last_seen))
-    out_of_range = compliance is not None and compliance.get("passed") is False
-    reasons = []
-    if out_of_range and compliance is not None:
-        if compliance.get("verdict") == "range_b":
-            reasons.append(f"outside ANSI C84.1 Range A {compliance['point']} "
-                           "(within Range B)")
-        elif compliance.get("verdict") == "outside_b":
-            reasons.append(f"outside ANSI C84.1 Range B {compliance['point']}")
-        else:
-            reasons.append(f"fails {compliance['rule']}")
-    if power_loss:
-        reasons.append("monitor lost power (event closed by power loss)")
-    elif interruptions:
-        reasons.append("supply interrupted")
-    if partial:
-        reasons.append("partial outage (a leg or phase lost)")
-    planned = (dev.get("state") == "offline" and planned_stop_after is not None
-               and dev.get("state_since") is not None
-               and float(dev["state_since"]) >= planned_stop_after)
-    if dev.get("state") == "offline" and not planned:
-        reasons.append("offline")
-    elif not planned and silent_s is not None and silent_s > SILENT_AFTER_S:
-        reasons.append(f"silent for {silent_s:.0f} s")
-    return {
+    compliance = verdicts["compliance"]
+    # A planned stop: the agent announced it (its own offline status), or it went offline
+    # inside the caller's maintenance window (planned_stop_after).
+    planned = dev.get("state") == "offline" and (
+        is_planned_stop(dev.get("status") or {})
+        or (planned_stop_after is not None and dev.get("state_since") is not None
+            and float(dev["state_since"]) >= planned_stop_after))
+    section = {
         "device": dev["device"], "site": dev["site"], "feeder": model.get("feeder"),
         "state": dev.get("state"), "state_since": _iso(dev.get("state_since")),
         "planned_stop": planned,
         "last_seen_utc": last_seen, "last_seen": _iso(last_seen), "silent_s": _num(silent_s, 1),
-        "nominal_v": nominal, "nominal_source": nominal_source, "nominal_hz": hz,
-        "measurement_point": point,
+        "nominal_v": None if nominal is None else nominal.volts,
+        "nominal_source": "unknown" if nominal is None else nominal.source,
+        "nominal_candidates": [] if nominal is None else list(nominal.candidates),
+        "nominal_hz": hz, "measurement_point": point, "standard": verdicts["standard"],
         "events": len(events), "events_by_kind": by_kind, "events_by_category": by_category,
         "worst_dip": None if worst_dip is None else {
             "level_pu": _num(worst_dip["level_pu"]), "level_v": _num(worst_dip.get("level_v"), 2),
@@ -306,66 +230,19 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
             "level_pu": _num(max_swell["level_pu"]), "level_v": _num(max_swell.get("level_v"), 2),
             "start": _iso(max_swell["start_utc"])},
         "compliance": compliance, "overvoltage": overvoltage,
-        "out_of_range": out_of_range,
+        "profile": verdicts["profile"], "inverter": verdicts["inverter"],
+        "supply": verdicts["supply"],
+        "out_of_range": compliance is not None and compliance.get("passed") is False,
         "lost_power": bool(power_loss or interruptions),
         "power_loss_events": len(power_loss), "interruptions": len(interruptions),
         "partial_outages": len(partial),
         "trend_seconds": 0 if trend is None else int(trend["t"].size),
         "trend_rows_unreadable": trend_errors,
-        "ten_min_aggregates": int(ten_min.shape[0]) if ten_min.size else 0,
-        "attention": reasons,
+        "ten_min_aggregates": ten_min.size,
         "event_list": [_event_row(ev) for ev in events],
     }
-
-
-def _compliance(standard: str, nominal: float, point: str,
-                trend: dict[str, np.ndarray] | None,
-                ten_min: np.ndarray) -> dict[str, Any] | None:
-    """The worst channel's service-voltage compliance (each channel is one line to neutral).
-
-    ANSI C84.1: per-second means (event-flagged seconds not judged), else stored 10-min
-    means. EN 50160: stored 10-min means, else clock-aligned 10-min means formed from the
-    per-second values (flagged intervals not judged).
-    """
-    if standard == "ansi":
-        if trend is not None:
-            results = [ansi_c84_1(trend["mean"][:, c], nominal, point, exclude=trend["flagged"])
-                       for c in range(trend["mean"].shape[1])]
-            basis = "per-second means, event-flagged seconds excluded"
-        elif ten_min.size:
-            results = [ansi_c84_1(ten_min[:, c], nominal, point, interval_s=600.0)
-                       for c in range(ten_min.shape[1])]
-            basis = "10-min aggregates"
-        else:
-            return None
-    elif ten_min.size:
-        results = [en50160_voltage(ten_min[:, c], nominal) for c in range(ten_min.shape[1])]
-        basis = "10-min aggregates"
-    elif trend is not None:
-        results = []
-        for c in range(trend["mean"].shape[1]):
-            _, means, flagged = ten_minute_means(trend["t"], trend["mean"][:, c],
-                                                 trend["flagged"])
-            results.append(en50160_voltage(means, nominal, exclude=flagged))
-        basis = "10-min means of the per-second values, flagged intervals excluded"
-    else:
-        return None
-    worst = min(results, key=_compliance_rank)
-    worst["basis"] = basis
-    worst["summary"] = summarise(worst)
-    return worst
-
-
-def _compliance_rank(result: Mapping[str, Any]) -> int:
-    """Worse results first: fail < provisional/partial < pass < no data."""
-    verdict = result.get("verdict")
-    if verdict == "outside_b":
-        return 0
-    if verdict == "range_b" or result.get("passed") is False:
-        return 1
-    if result.get("passed") is True:
-        return 2
-    return 3
+    section["attention_period"] = period_reasons(section)
+    return section
 
 
 def _first_data(store: RecorderStore, devices: list[dict[str, Any]]) -> dict[str, float]:
@@ -382,23 +259,54 @@ def _first_data(store: RecorderStore, devices: list[dict[str, Any]]) -> dict[str
     return first
 
 
-def _ten_min(payloads: list[Any]) -> np.ndarray:
-    values = []
+def _ten_min(payloads: list[Any]) -> TenMin:
+    """Complete stored 10-min aggregates. Flagged ones are kept and judged (the flag is for
+    event statistics, IEC 61000-4-30, from memory); a partial interval (the agent started or
+    stopped inside it) is no 10-min mean."""
+    rows: list[tuple[float, list[float], list[float], bool]] = []
+    orders: set[int] = set()
     for p in payloads:
-        if not isinstance(p, dict):
+        if not isinstance(p, dict) or p.get("kind") != "10min" \
+                or not isinstance(p.get("rms"), list):
             continue
-        if p.get("kind") != "10min" or not isinstance(p.get("rms"), list):
+        count, t = p.get("count"), p.get("t")
+        if not isinstance(count, int) or count < TEN_MIN_FULL_COUNT \
+                or not isinstance(t, int | float):
             continue
-        # A partial interval (the agent started or stopped inside it) is no 10-min mean;
-        # one flagged by an RMS event is not judged (IEC 61000-4-30 flagging, from memory).
-        count = p.get("count")
-        if not isinstance(count, int) or count < TEN_MIN_FULL_COUNT or p.get("flagged"):
-            continue
-        values.append([math.nan if x is None else float(x) for x in p["rms"]])
-    if not values:
-        return np.empty((0, 0))
-    width = max(len(v) for v in values)
-    return np.array([v + [math.nan] * (width - len(v)) for v in values])
+        thd_raw = p.get("thd")
+        thd: list[Any] = thd_raw if isinstance(thd_raw, list) else []
+        rows.append((float(t), [math.nan if x is None else float(x) for x in p["rms"]],
+                     [math.nan if x is None else float(x) for x in thd],
+                     bool(p.get("flagged"))))
+        order = p.get("thd_max_order")  # newer edges state the THD's harmonic orders
+        if isinstance(order, int) and not isinstance(order, bool):
+            orders.add(order)
+    if not rows:
+        return EMPTY_TEN_MIN
+    width = max(len(r[1]) for r in rows)
+
+    def pad(x: list[float]) -> list[float]:
+        return x + [math.nan] * (width - len(x))
+
+    return TenMin(np.array([r[0] for r in rows]), np.array([pad(r[1]) for r in rows]),
+                  np.array([pad(r[2][:width]) for r in rows]), np.array([r[3] for r in rows]),
+                  min(orders) if orders else None)
+
+
+def _interruption_windows(store: RecorderStore, all_events: list[dict[str, Any]],
+                          start_utc: float | None, end_utc: float | None,
+                          ) -> tuple[list[dict[str, Any]], list[Any]]:
+    """Each home without supply: the store's outage windows (power loss reports) and the
+    closed interruption events its monitor rode through (merged per home by the verdict)."""
+    windows = store.outage_windows(start_from=start_utc, end_before=end_utc)
+    spans = [{"device": w.device, "start_utc": w.start_utc, "end_utc": w.end_utc}
+             for w in windows]
+    for ev in all_events:
+        if ev.get("kind") == "interruption" and ev.get("state") == "closed" \
+                and ev.get("start_utc") is not None and ev.get("end_utc") is not None:
+            spans.append({"device": ev["device"], "start_utc": float(ev["start_utc"]),
+                          "end_utc": max(float(ev["end_utc"]), float(ev["start_utc"]))})
+    return spans, windows
 
 
 def fleet_report(store: RecorderStore, *, now: float | None = None,
@@ -406,13 +314,14 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
                  window_s: float = SIMULTANEITY_WINDOW_S,
                  temporal_window_s: float = TEMPORAL_WINDOW_S,
                  planned_stop_after: float | None = None, start_utc: float | None = None,
-                 end_utc: float | None = None) -> dict[str, Any]:
+                 end_utc: float | None = None, averaging_window_s: float = 600.0,
+                 inverter_category: str = "II") -> dict[str, Any]:
     """The fleet report of everything in ``store`` (read-only).
 
     Parameters
     ----------
     store : RecorderStore
-    now : float, optional  [s UTC] reference for "silent" devices (default: the clock)
+    now : float, optional  [s UTC] reference for "now" (default: the clock)
     default_nominal_v : float, optional  [V] nominal for homes whose store records none
     min_homes : int  a fleet event listed as "seen by many homes" needs this many homes
     window_s : float  [s]  simultaneity window (plus the devices' clock errors)
@@ -420,22 +329,22 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     planned_stop_after : float, optional  [s UTC] devices that went offline at or after this
         time stopped as planned (a maintenance window, the end of a demo): not flagged
     start_utc, end_utc : float, optional  [s UTC] the reporting period ``[start, end)``:
-        events that start in it, per-second and 10-min values inside it, and the homes
-        monitored during it (first seen before its end, last seen after its start)
+        events that start in it, per-second and 10-min values inside it; a unit silent since
+        before the period is still listed (``monitored_in_period`` False, silent since ...)
+    averaging_window_s : float  [s]  ANSI C84.1 averaging window (60, 300, 600 or 900)
+    inverter_category : IEEE 1547-2018 category (I, II, III) for "would it have tripped"
 
     Returns
     -------
-    dict (JSON-ready): ``homes_monitored``, ``period``, ``devices`` (one section each),
-    ``fleet_events``, ``temporal_aggregates``, ``sarfi``, ``outage_windows``,
-    ``attention`` (homes needing a look), ``store`` counts (dead letters, gaps).
+    dict (JSON-ready): ``indicative``, ``homes_monitored``, ``period``, ``devices`` (one
+    section each), ``fleet_events``, ``temporal_aggregates``, ``sarfi``, ``interruptions``,
+    ``outage_windows``, ``now`` (each unit's state now), ``attention`` (now and period
+    apart), ``store`` counts (dead letters, gaps).
     """
     now = time.time() if now is None else now
     if start_utc is not None and end_utc is not None and not start_utc < end_utc:
         raise ValueError(f"the period start {start_utc} is not before its end {end_utc}")
-    # Monitored in the period: heard from at or after its start, and either known before
-    # its end or with data inside it (a store may learn a site model after the data).
-    devices = [d for d in store.devices()
-               if start_utc is None or d.get("last_seen") is None or d["last_seen"] >= start_utc]
+    devices = store.devices()
     all_events = store.events(start_from=start_utc, start_before=end_utc)
     first_data = _first_data(store, devices) if end_utc is not None else {}
     by_device: dict[str, list[dict[str, Any]]] = {}
@@ -448,31 +357,38 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
                         "last_seen": None, "state": "unknown", "state_since": None})
     sections = []
     records: list[EventRecord] = []
-    models: dict[str, Mapping[str, Any]] = {}
     for dev in devices:
         name = dev["device"]
-        models[name] = dev.get("model") or {}
         if end_utc is not None and first_data.get(name, dev.get("first_seen") or 0.0) >= end_utc:
             continue  # not yet monitored in the period
         # One home at a time: its seconds are decoded chunk by chunk and dropped once its
         # section is made, so memory follows the largest home, not the fleet.
         trend = _Trend()
-        fields = TREND_FIELDS if models[name].get("nominal_hz") in _NOMINAL_HZ \
-            else TREND_FIELDS | {"hz"}
-        for chunk in store.trend_arrays(name, start_utc, end_utc, fields=fields):
+        for chunk in store.trend_arrays(name, start_utc, end_utc):
             trend.add(chunk)
         events = by_device.get(name, [])
         aggregates = store.ten_min_aggregates(name, start_utc, end_utc)
-        sections.append(_device_section(dev, events, trend.arrays(), _ten_min(aggregates),
-                                        trend.errors, now,
-                                        default_nominal_v, planned_stop_after))
+        section = _device_section(
+            dev, events, trend.arrays(), _ten_min(aggregates),
+            trend.errors, now, default_nominal_v, planned_stop_after, averaging_window_s,
+            inverter_category)
         # Harmonics and flicker verdicts per channel (agent.report.power_quality).
-        sections[-1].update(device_sections([p for p in aggregates if isinstance(p, dict)]))
+        section.update(device_sections([p for p in aggregates if isinstance(p, dict)]))
+        # Heard from at or after the period's start: monitored in it. A unit silent since
+        # before is listed all the same (never dropped), but is not a home of N_T.
+        section["monitored_in_period"] = (start_utc is None or dev.get("last_seen") is None
+                                          or float(dev["last_seen"]) >= start_utc
+                                          or bool(events))
+        if not section["monitored_in_period"]:
+            section["attention_period"].append(
+                f"silent since {_iso(dev.get('last_seen'))} (before the period)")
+        sections.append(section)
         for ev in events:
-            rec = _record(ev, models[name])
+            rec = _record(ev, dev.get("model") or {})
             if rec is not None:
                 records.append(rec)
-    homes = len(sections)
+    monitored = [s for s in sections if s["monitored_in_period"]]
+    homes = len(monitored)
 
     fleet = group_simultaneous(records, window_s=window_s)
     fleet_rows = []
@@ -486,7 +402,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
             "homes": fe.homes, "homes_monitored": homes,
             "share": round(fe.homes / homes, 4) if homes else None,
             "devices": list(fe.devices), "sites": list(fe.sites), "feeder": fe.feeder,
-            "homes_on_feeder": (sum(1 for sec in sections if sec["feeder"] == fe.feeder)
+            "homes_on_feeder": (sum(1 for sec in monitored if sec["feeder"] == fe.feeder)
                                 if fe.feeder else None),
             "worst_level_pu": _num(fe.level_pu), "worst_device": fe.worst.device,
             "longest_s": _num(max((e.duration_s or 0.0) for e in fe.events), 4),
@@ -501,26 +417,49 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         key=lambda e: f"{e.device}/{'swell' if e.kind == 'swell' else 'sag'}")
     sarfi_out: dict[str, Any] = {"homes_monitored": homes}
     if homes:
-        result = sarfi([a.representative for a in per_home], homes, REPORT_SARFI)
+        result = sarfi([a.representative for a in per_home],
+                       max(homes, len({a.representative.device for a in per_home})),
+                       REPORT_SARFI)
         sarfi_out.update({
             "counts": {f"SARFI-{x}": result.counts[x] for x in REPORT_SARFI},
             "index": {f"SARFI-{x}": round(result.index[x], 4) for x in REPORT_SARFI},
+            # IEEE 1564 SARFI-ITIC is a sag index; swells above the curve are counted apart.
             "SARFI-ITIC": round(result.itic, 4), "itic_count": result.itic_count,
+            "ITIC-swell": round(result.itic_swell, 4),
+            "itic_swell_count": result.itic_swell_count,
             "SARFI-SEMI": round(result.semi, 4), "semi_count": result.semi_count,
             "skipped_open": result.skipped_open,
             "events_counted": len(per_home), "events_stored": len(records),
         })
-    # Outage windows as the store recorded them from every restart report and last-gasp
-    # event (the devices table keeps only the latest status, so it cannot give them).
-    # Reports the store could not read were dead-lettered with the reason, not dropped.
-    outage_errors: list[str] = []
-    windows = store.outage_windows(start_from=start_utc, end_before=end_utc)
+    spans, windows = _interruption_windows(store, all_events, start_utc, end_utc)
+    interruptions = interruption_stats(spans, homes).as_dict()
+    now_verdicts = fleet_now(store, now, default_nominal_v=default_nominal_v)
+    in_report = {s["device"] for s in sections}
+    now_rows = [v.as_dict() for v in now_verdicts if v.details.get("device") in in_report]
+    now_by_device = {r["device"]: r for r in now_rows}
+    attention = []
+    for s in sections:
+        states = [st for st in (now_by_device.get(s["device"]) or {}).get("states", [])
+                  if st["state"] in ("lost_power", "supply_out", "offline", "out_of_range")
+                  and not (s["planned_stop"] and st["state"] == "offline")]
+        now_list = [{"state": st["state"], "since": _iso(st.get("since")),
+                     "reason": st["reason"]} for st in states]
+        if now_list or s["attention_period"]:
+            attention.append({
+                "device": s["device"], "site": s["site"], "now": now_list,
+                "period": s["attention_period"],
+                "reasons": [f"now {st['state'].replace('_', ' ')}"
+                            + (f" since {st['since']}" if st["since"] else "")
+                            + f": {st['reason']}" for st in now_list] + s["attention_period"]})
     starts = [ev["start_utc"] for ev in all_events if ev.get("start_utc") is not None]
     trend_t = [s["last_seen_utc"] for s in sections if s["last_seen_utc"] is not None]
     return {
         "report": "halfcycle fleet report", "version": REPORT_VERSION,
+        "indicative": INDICATIVE,
         "generated": _iso(now), "homes_monitored": homes,
         "period_requested": {"start": _iso(start_utc), "end": _iso(end_utc)},
+        "settings": {"ansi_averaging_window_s": averaging_window_s,
+                     "inverter_category": inverter_category},
         "sites": sorted({s["site"] for s in sections}),
         "period": {"first_event": _iso(min(starts)) if starts else None,
                    "last_event": _iso(max(starts)) if starts else None,
@@ -533,187 +472,20 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
             "fleet_aggregates": len(temporal),
             "per_home_events": len(records), "per_home_aggregates": len(per_home)},
         "sarfi": sarfi_out,
+        "interruptions": interruptions,
         "outage_windows": [{"device": w.device, "site": w.site, "start": _iso(w.start_utc),
                             "end": _iso(w.end_utc), "duration_s": _num(w.duration_s, 3),
                             "sources": list(w.sources)} for w in windows],
-        "outage_errors": outage_errors,
+        "outage_errors": [],
         # Most of a site's monitors out at once: one site-level outage, not N unit outages.
         "site_outages": [{"site": o.site, "start": _iso(o.start_utc), "end": _iso(o.end_utc),
                           "duration_s": _num(o.end_utc - o.start_utc, 3),
                           "devices": list(o.devices), "devices_monitored": o.devices_monitored}
                          for o in store.site_outages(start_from=start_utc, end_before=end_utc)],
-        "attention": [{"device": s["device"], "site": s["site"], "reasons": s["attention"]}
-                      for s in sections if s["attention"]],
+        "now": now_rows,
+        "attention": attention,
         "store": {"events": len(all_events),
                   "events_not_correlated": len(all_events) - len(records),
                   "dead_letters": store.count("dead_letters"),
                   "gaps": store.count("gaps"), "captures": store.count("captures")},
     }
-
-
-# --- text -------------------------------------------------------------------------------------
-
-
-def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
-    cells = [[("-" if c is None else str(c)) for c in row] for row in rows]
-    widths = [max(len(h), *(len(r[i]) for r in cells)) if cells else len(h)
-              for i, h in enumerate(headers)]
-    line = "  ".join(h.ljust(w) for h, w in zip(headers, widths, strict=True))
-    out = [line, "  ".join("-" * w for w in widths)]
-    out += ["  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)) for r in cells]
-    return out
-
-
-def _names(devices: Sequence[str], most: int = 6) -> str:
-    """Device names for a table cell; a long list is cut (the JSON report has them all)."""
-    shown = ", ".join(devices[:most])
-    return shown if len(devices) <= most else f"{shown} ... (+{len(devices) - most} more)"
-
-
-def _pu(x: float | None) -> str | None:
-    return None if x is None else f"{x:.3f}"
-
-
-def render_text(report: Mapping[str, Any]) -> str:
-    """The report as readable text (tables), one section per question."""
-    lines: list[str] = []
-    if report.get("invented"):
-        lines += ["*** INVENTED DATA: a made-up demo street, not measurements of any real "
-                  "home, feeder or utility. ***", ""]
-    homes = report["homes_monitored"]
-    lines.append(f"halfcycle fleet report - {homes} homes monitored, sites: "
-                 f"{', '.join(report['sites']) or '-'}; generated {report['generated']}")
-    period = report["period"]
-    lines.append(f"events from {period['first_event'] or '-'} to {period['last_event'] or '-'};"
-                 f" last heard {period['last_seen'] or '-'}")
-    lines.append("")
-
-    lines.append("== Events seen by many homes at once (likely upstream: feeder or "
-                 "transmission) ==")
-    if report["fleet_events"]:
-        lines += _table(
-            ("start (UTC)", "kind", "homes", "feeder", "worst pu", "longest s", "spread s",
-             "devices"),
-            [(f["start"], "+".join(f["kinds"]), f"{f['homes']}/{f['homes_monitored']}",
-              None if not f["feeder"] else f"{f['feeder']} ({f['homes']}/{f['homes_on_feeder']})",
-              _pu(f["worst_level_pu"]), f["longest_s"], f["spread_s"], _names(f["devices"]))
-             for f in report["fleet_events"]])
-    else:
-        lines.append("none: no event started on two or more homes together")
-    ta = report["temporal_aggregates"]
-    lines += [f"IEEE 1564 temporal aggregation ({ta['window_s']:.0f} s): {ta['fleet_events']} "
-              f"fleet events -> {ta['fleet_aggregates']} aggregates;",
-              f"  {ta['per_home_events']} home events -> {ta['per_home_aggregates']} counted "
-              "for SARFI (sags and swells aggregated apart)"]
-    lines.append("")
-
-    lines.append("== How many homes saw sags, swells and curve violations (IEEE 1564 SARFI) ==")
-    s = report["sarfi"]
-    if "index" in s:
-        keys = list(s["index"])
-        lines += _table(("index", *keys, "SARFI-ITIC"),
-                        [("homes (N_i)", *(s["counts"][k] for k in keys), s["itic_count"]),
-                         ("per home monitored", *(f"{s['index'][k]:.3f}" for k in keys),
-                          f"{s['SARFI-ITIC']:.3f}")])
-        lines.append(f"over {s['homes_monitored']} homes monitored; open events not counted: "
-                     f"{s['skipped_open']}")
-    lines.append("")
-
-    lines.append("== Overvoltage and swells (solar installers) ==")
-    rows: list[tuple[Any, ...]] = []
-    for d in report["devices"]:
-        ov = d.get("overvoltage")
-        swell = d.get("max_swell")
-        days = (ov or {}).get("max_per_day") or {}
-        nominal = d.get("nominal_v")
-        rows.append((
-            d["device"],
-            None if swell is None else f"{swell['level_pu']:.3f} ({swell['level_v']} V)",
-            None if ov is None else ov["seconds_above"],
-            None if ov is None else ov["seconds_peak_above"],
-            None if ov is None else (f"{ov['ten_min_above']}/{ov['ten_min_means']}"
-                                     if ov["ten_min_means"] else "n/a (<10 min)"),
-            "; ".join(f"{k} {v:.1f} V" + (f" ({v / nominal:.3f} pu)" if nominal else "")
-                      for k, v in sorted(days.items())) or None,
-        ))
-    lines += _table(("home", "max swell pu", "s mean>1.10", "s peak>1.10", "10-min>1.10",
-                     "highest per day"), rows)
-    lines += ["1.10 pu: EN 50549-1 10-min mean trip level (from memory). 10-min column: means",
-              "  above 1.10 pu / 10-min means available (stored, else moving means)."]
-    lines.append("")
-
-    lines.append("== Service voltage compliance ==")
-    rows = []
-    for d in report["devices"]:
-        c = d.get("compliance")
-        nominal = d.get("nominal_v")
-        name = None if nominal is None else f"{nominal:g} ({d['nominal_source']})"
-        if c is None:
-            rows.append((d["device"], name, d.get("measurement_point"), "no data", None, None,
-                         None, None))
-            continue
-        ansi = c["standard"] == "ANSI C84.1"
-        r = c["range_a"] if ansi else c["band"]
-        verdict = (c["verdict"].replace("_", " ") if ansi
-                   else {True: "pass", False: "fail", None: "no data"}[c["passed"]]
-                   + ("" if c["complete_week"] else " (provisional)"))
-        rows.append((
-            d["device"], name, d.get("measurement_point"), verdict,
-            None if r["fraction_inside"] is None else f"{100 * r['fraction_inside']:.1f} %",
-            f"{r['low_v']:.1f}-{r['high_v']:.1f} V",
-            f"{r['time_below_s']:.0f}/{r['time_above_s']:.0f}",
-            f"{r['worst_low_v']:.1f}/{r['worst_high_v']:.1f}"
-            if r["worst_low_v"] is not None else None))
-    lines += _table(("home", "nominal V", "point", "verdict", "inside", "limits",
-                     "s below/above", "worst low/high V"), rows)
-    lines += [
-        "ANSI C84.1 (60-Hz homes): 'inside' = share of per-second (or 10-min) means within",
-        "  Range A; verdict range a / range b / outside b. Range A service limits: public",
-        "  summaries; utilization and Range B limits: from memory.",
-        "EN 50160 (50-Hz homes): 10-min means within Un +-10 % for 95 % of a week, all within",
-        "  +10/-15 %; provisional until a full week (1008 means).",
-        "Values flagged by an RMS event are not judged."]
-    lines.append("")
-
-    lines.append("== Units out of range, offline or without power (property managers) ==")
-    if report["attention"]:
-        lines += _table(("home", "site", "why"),
-                        [(a["device"], a["site"], "; ".join(a["reasons"]))
-                         for a in report["attention"]])
-    else:
-        lines.append("none")
-    if report["outage_windows"]:
-        lines.append("outage windows (from restart reports and power-loss events):")
-        lines += _table(("home", "from", "to", "s", "from reports"),
-                        [(w["device"], w["start"], w["end"], w["duration_s"],
-                          ", ".join(w["sources"])) for w in report["outage_windows"]])
-    if report["site_outages"]:
-        lines.append("site outages (most of a site's monitors out at once):")
-        lines += _table(("site", "from", "to", "s", "homes out"),
-                        [(o["site"], o["start"], o["end"], o["duration_s"],
-                          f"{len(o['devices'])}/{o['devices_monitored']}")
-                         for o in report["site_outages"]])
-    lines.append("")
-
-    lines.append("== Every home ==")
-    lines += _table(
-        ("home", "site", "state", "last seen", "events", "by IEEE 1159 category", "worst dip pu"),
-        [(d["device"], d["site"], d["state"] + (" (planned stop)" if d["planned_stop"] else ""),
-          d["last_seen"], d["events"],
-          ", ".join(f"{k} {v}" for k, v in sorted(d["events_by_category"].items())) or None,
-          None if d["worst_dip"] is None else _pu(d["worst_dip"]["level_pu"]))
-         for d in report["devices"]])
-    st = report["store"]
-    lines.append("")
-    lines.append(f"store: {st['events']} events, {st['captures']} captures, {st['gaps']} gap "
-                 f"notices, {st['dead_letters']} dead letters")
-    unreadable = {d["device"]: d["trend_rows_unreadable"] for d in report["devices"]
-                  if d["trend_rows_unreadable"]}
-    if unreadable:
-        lines.append(f"NOT USED: unreadable per-second rows {unreadable}")
-    if st.get("events_not_correlated"):
-        lines.append(f"NOT USED in fleet figures: {st['events_not_correlated']} events without "
-                     "kind, start or level")
-    for problem in report.get("outage_errors") or []:
-        lines.append(f"NOT USED in outage windows: {problem}")
-    return "\n".join(lines) + "\n"

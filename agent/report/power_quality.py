@@ -15,7 +15,6 @@ from typing import Any
 import numpy as np
 
 from agent.measurement.types import Aggregate
-from agent.verdicts import INDICATIVE
 from agent.verdicts.flicker import en50160_flicker
 from agent.verdicts.harmonics import harmonic_verdicts
 from agent.wire.codec import aggregate_from_message
@@ -72,5 +71,5 @@ def device_sections(payloads: Sequence[Mapping[str, Any]],
         flick[name] = en50160_flicker(np.asarray(plt, float), np.asarray(pst, float)).as_dict()
     for name, verdicts in harmonic_verdicts(per_h).items():
         harm[name] = [v.as_dict() for v in verdicts]
-    return {"harmonics": {"channels": harm, "indicative": INDICATIVE},
-            "flicker": {"channels": flick, "indicative": INDICATIVE}}
+    # The report and analyze say INDICATIVE once at their top, for every verdict in them.
+    return {"harmonics": {"channels": harm}, "flicker": {"channels": flick}}
