@@ -17,7 +17,7 @@ from agent import __version__
 from agent.config import ConfigError
 
 # Command modules, in the order they appear in --help.
-COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "demo")
+COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "serve", "demo")
 
 
 class UserError(Exception):

@@ -117,31 +117,47 @@ def unit_context(store: RecorderStore, device: str) -> dict[str, Any]:
             "dev": dev}
 
 
+#: The figures of a unit page, in page order.
+UNIT_FIGURES = ("profile", "daily-envelope", "hour-profile", "histogram", "overvoltage-hours")
+
+
 def unit_figures(store: RecorderStore, unit: Mapping[str, Any], tz: tzinfo,
-                 start_utc: float | None = None, end_utc: float | None = None
-                 ) -> list[Figure]:
+                 start_utc: float | None = None, end_utc: float | None = None,
+                 only: Sequence[str] = UNIT_FIGURES) -> list[Figure]:
     """A home's figures: RMS means with the bands, daily envelope, time-of-day profile,
-    histogram, and time above the band by hour of the day."""
-    series = data.profile_series(store, unit["device"], start_utc, end_utc)
+    histogram, and time above the band by hour of the day (``only``: a subset by name)."""
     bands = unit["bands"]
     if not bands:
-        return [figures.empty("profile", "declared voltage unknown: no bands to draw against",
-                              "Profile: the unit's site model declares no nominal voltage.")]
-    return [figures.profile(series, bands, tz), figures.daily_envelope(series, bands, tz),
-            figures.hour_profile(series, bands, tz), figures.histogram(series, bands),
-            figures.overvoltage_by_hour(series, bands[0], tz)]
+        return [figures.empty(name, "declared voltage unknown: no bands to draw against",
+                              "The unit's site model declares no nominal voltage.")
+                for name in only]
+    series = data.profile_series(store, unit["device"], start_utc, end_utc)
+    make = {"profile": lambda: figures.profile(series, bands, tz),
+            "daily-envelope": lambda: figures.daily_envelope(series, bands, tz),
+            "hour-profile": lambda: figures.hour_profile(series, bands, tz),
+            "histogram": lambda: figures.histogram(series, bands),
+            "overvoltage-hours": lambda: figures.overvoltage_by_hour(series, bands[0], tz)}
+    return [make[name]() for name in only]
+
+
+def capture_figure(store: RecorderStore, unit: Mapping[str, Any], event: Mapping[str, Any],
+                   capture_id: str) -> Figure | None:
+    """The waveform figure of one capture; None when the unit's nominal is unknown."""
+    nominal, hz = unit.get("nominal_v"), unit.get("nominal_hz")
+    if not nominal or not hz:
+        return None
+    trace = data.capture_trace(store.capture(capture_id), float(nominal), float(hz))
+    return figures.waveform(trace, event, float(nominal), name=f"wave-{capture_id}")
 
 
 def event_figures(store: RecorderStore, unit: Mapping[str, Any],
                   event: Mapping[str, Any]) -> list[tuple[str, Figure]]:
     """(capture id, waveform figure) for each stored capture of an event."""
     out = []
-    nominal, hz = unit.get("nominal_v"), unit.get("nominal_hz")
-    if not nominal or not hz:
-        return out
     for cid in event.get("captures") or ():
-        trace = data.capture_trace(store.capture(cid), float(nominal), float(hz))
-        out.append((cid, figures.waveform(trace, event, float(nominal), name=f"wave-{cid}")))
+        fig = capture_figure(store, unit, event, cid)
+        if fig is not None:
+            out.append((cid, fig))
     return out
 
 
