@@ -53,6 +53,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="interruption threshold [pu]: 0.05 (EN 50160) or 0.10 (IEEE 1159)",
     )
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--html", metavar="DIR", default=None,
+                   help="also write a static HTML report with figures: DIR/index.html")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_analyze)
 
 
@@ -162,6 +166,10 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         nominal_inferred=inferred,
         duration_s=float(duration),
     )
+    if args.html:
+        from agent.render.cli import write_html_for_analysis
+
+        write_html_for_analysis(result, args.html, args.tz, invented=args.file is None)
     if args.json:
         json.dump(result, sys.stdout, allow_nan=False)
         sys.stdout.write("\n")

@@ -260,6 +260,9 @@ class DemoRun:
     stopped_after: float | None = None
     #: Every home ran and its outbox drained.
     complete: bool = False
+    #: Where the static HTML report goes, and the time zone of its times.
+    html_dir: Path | None = None
+    tz: str = "UTC"
 
     def _spawn(self, argv: list[str], log: str, **kw: Any) -> subprocess.Popen[Any]:
         logs = self.root / "logs"
@@ -543,6 +546,11 @@ class DemoRun:
 
         with self._store() as store:
             report = fleet_report(store, planned_stop_after=self.stopped_after)
+            from agent.render.cli import write_html_for_store
+
+            html = write_html_for_store(store, str(self.html_dir or self.root / "report"),
+                                        self.tz, report=report,
+                                        invented=True)
         if self.stopped_after is not None:
             self.notes.append("the demo stopped every agent at the end of its recording: "
                               "those units read offline, as planned")
@@ -553,7 +561,7 @@ class DemoRun:
                       for h in self.homes_run],
             "seconds": self.seconds, "speed": self.speed, "dir": str(self.root),
             "timings_s": {k: round(v, 2) for k, v in self.timings.items()},
-            "notes": self.notes, "complete": self.complete,
+            "notes": self.notes, "complete": self.complete, "html": str(html.resolve()),
         }
         return report
 
@@ -587,6 +595,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="keep everything in this (new or empty) folder; default: a temporary "
                    "folder removed at the end")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_demo)
 
 
@@ -615,7 +625,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from agent import logs
 
     logs.configure("error")  # the collector thread logs here; keep the terminal readable
-    run = DemoRun(root, args.homes, args.seconds, args.speed, say)
+    # The HTML report lives in the demo's folder; without --dir that folder is removed at
+    # the end, so the report gets a folder of its own.
+    run = DemoRun(root, args.homes, args.seconds, args.speed, say, tz=args.tz,
+                  html_dir=root / "report" if keep else Path(tempfile.mkdtemp(
+                      prefix="halfcycle-demo-report-")))
     try:
         report = run.run()
     finally:
@@ -635,6 +649,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         demo = report["demo"]
         sys.stdout.write("\n" + "\n".join(f"note: {n}" for n in demo["notes"]) + "\n")
         t = demo["timings_s"]
+        sys.stdout.write(f"HTML report: {demo['html']}\n")
         sys.stdout.write(f"demo took {t.get('total_s', 0):.1f} s"
                          + (f"; files kept in {root}\n" if keep else "\n"))
         sys.stdout.write(INVENTED_BANNER + "\n")

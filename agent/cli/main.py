@@ -15,6 +15,7 @@ from collections.abc import Sequence
 
 from agent import __version__
 from agent.config import ConfigError
+from agent.render.cli import HtmlOptionError
 
 # Command modules, in the order they appear in --help.
 COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "serve", "demo")
@@ -50,7 +51,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     try:
         return int(args.func(args) or 0)
-    except (UserError, ConfigError) as exc:
+    except (UserError, ConfigError, HtmlOptionError) as exc:
         print(f"halfcycle {args.command}: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -38,6 +38,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--until", default=None,
                    help="period end (exclusive), same forms (default: no end)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--html", metavar="DIR", default=None,
+                   help="also write a static HTML report with figures: DIR/index.html")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_report)
 
 
@@ -114,6 +118,11 @@ def cmd_report(args: argparse.Namespace) -> int:
     try:
         report = fleet_report(store, now=now, default_nominal_v=args.nominal,
                               start_utc=since, end_utc=until)
+        if args.html:
+            from agent.render.cli import write_html_for_store
+
+            write_html_for_store(store, args.html, args.tz, report=report, now=now,
+                                 start_utc=since, end_utc=until, default_nominal_v=args.nominal)
     except StoreError as exc:
         raise UserError(f"--store {args.store}: {exc}") from None
     finally:
