@@ -68,7 +68,8 @@ def verdict_rows(obj: Any, where: str = "") -> Iterator[dict[str, Any]]:
             basis = obj.get("basis") or {}
             yield {"where": where, "rule": obj.get("rule"), "verdict": obj.get("verdict"),
                    "passed": obj.get("passed"), "confidence": obj.get("confidence"),
-                   "basis": ", ".join(f"{k}: {_short(v)}" for k, v in basis.items())
+                   "basis": ", ".join(f"{k}: {iso_utc(v) if k.endswith('_utc') else _short(v)}"
+                                      for k, v in basis.items())
                    if isinstance(basis, Mapping) else _short(basis),
                    "notes": "; ".join(str(n) for n in obj.get("notes") or ())}
             return
