@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -98,6 +99,23 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     counts = report["sarfi"]["counts"]
     assert counts["SARFI-90"] == 4 and counts["SARFI-70"] == 4
     assert counts["SARFI-110"] == 1 and counts["SARFI-120"] == 0
+
+    # The static HTML report in the demo's folder, its path printed; every figure it
+    # references is an SVG file in the folder (one folder, no network).
+    index = run_dir / "report" / "index.html"
+    assert report["demo"]["html"] == str(index.resolve())
+    assert f"HTML report: {index.resolve()}" in done.stderr
+    html = index.read_text()
+    srcs = re.findall(r'<img src="([^"]+)"', html)
+    assert len(srcs) >= 6 + 5 * 4 + 4  # fleet and curves, 5 per home, the waveforms
+    for src in srcs:
+        svg = (index.parent / src).read_text()
+        assert src.endswith(".svg") and svg.startswith("<svg")
+    assert html.count("<figcaption>") == len(srcs)
+    assert "INVENTED" in html
+    assert not re.search(r'(src|href)="(https?:)?//', html)
+    comtrade = sorted(p.suffix for p in (index.parent / "comtrade").iterdir())
+    assert comtrade and comtrade.count(".cfg") == comtrade.count(".dat")
 
 
 def test_demo_without_mosquitto_says_what_to_install(

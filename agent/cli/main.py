@@ -18,7 +18,8 @@ from agent.config import ConfigError
 from agent.render.cli import HtmlOptionError
 
 # Command modules, in the order they appear in --help.
-COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "serve", "demo")
+COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "serve",
+            "demo")
 
 
 class UserError(Exception):
@@ -59,4 +60,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # Run as ``python -m agent.cli.main``: use the imported module, so the UserError the
+    # commands raise (agent.cli.main.UserError) is the class main() catches.
+    from agent.cli.main import main as _main
+
+    sys.exit(_main())

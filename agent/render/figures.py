@@ -8,8 +8,8 @@ shows and the rule it is drawn against. Text stays text in the SVG (searchable, 
 from __future__ import annotations
 
 import io
-import warnings
 import math
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, tzinfo
@@ -19,11 +19,11 @@ import matplotlib
 
 matplotlib.use("Agg")  # headless: no display, no GUI toolkit
 
-import numpy as np  # noqa: E402
-from matplotlib.figure import Figure as MplFigure  # noqa: E402
+import numpy as np
+from matplotlib.figure import Figure as MplFigure
 
-from agent.render.data import Series, Trace  # noqa: E402
-from agent.verdicts.limits import Band  # noqa: E402
+from agent.render.data import Series, Trace
+from agent.verdicts.limits import Band
 
 # Our palette: slate ink on warm paper, one hue per IEEE 1159 family.
 INK = "#22313a"

@@ -97,9 +97,10 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
          "figures": [by_name["fleet-timeline"], by_name["sarfi"], by_name["outages"]],
          "table": {"head": ["start", "kinds", "homes", "share", "worst [pu]",
                             "worst home", "spread [s]"],
-                   "rows": [[pages.when(e.get("start_utc"), tz), ", ".join(e.get("kinds") or []), e.get("homes"),
-                             e.get("share"), e.get("worst_level_pu"), e.get("worst_device"),
-                             e.get("spread_s")] for e in fleet_events]}
+                   "rows": [[pages.when(e.get("start_utc"), tz),
+                             ", ".join(e.get("kinds") or []), e.get("homes"), e.get("share"),
+                             e.get("worst_level_pu"), e.get("worst_device"), e.get("spread_s")]
+                            for e in fleet_events]}
          if fleet_events else None},
         {"id": "curves", "title": "Events against equipment curves",
          "figures": [by_name["itic"], by_name["semi-f47"]]},

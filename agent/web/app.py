@@ -142,13 +142,13 @@ class LivePage:
         with self.store() as store:
             units = [v.as_dict() for v in fleet_now(store, now,
                                                    default_nominal_v=self.default_nominal_v)]
-            last = {}
+            last: dict[str, dict[str, Any]] = {}
             for ev in store.events(start_from=now - self.period_s):
                 last[ev["device"]] = ev
         for u in units:
-            ev = last.get(u.get("device"))
-            u["last_event"] = None if ev is None else {
-                k: v for k, v in pages.event_row(ev).items() if k in (
+            latest = last.get(str(u.get("device")))
+            u["last_event"] = None if latest is None else {
+                k: v for k, v in pages.event_row(latest).items() if k in (
                     "event_id", "kind", "category", "start_utc", "level_pu")}
         return {"generated_utc": now, "indicative": INDICATIVE, "time_zone": self.tz_name,
                 "units": units}
@@ -166,8 +166,8 @@ class LivePage:
                 if v.details.get("device") == device), None)
             report = fleet_report(store, now=now, default_nominal_v=self.default_nominal_v,
                                   start_utc=start)
-            section = next((d for d in report.get("devices") or []
-                            if d.get("device") == device), {})
+            section: dict[str, Any] = next((d for d in report.get("devices") or []
+                                            if d.get("device") == device), {})
             figs = pages.unit_figures(store, unit, self.tz, start, None)
         base = f"/figures/units/{device}/"
         for fig in figs:
@@ -282,7 +282,8 @@ def create_app(store_url: str, captures_dir: str | Path, *, auth: Auth | None = 
         except StoreError:
             raise HTTPException(404, f"capture {cid!r} is not stored") from None
         unit = pages.unit_context(store, info["device"])
-        event = next((e for e in unit["events"] if e["event_id"] == info["event_id"]), {})
+        event: dict[str, Any] = next(
+            (e for e in unit["events"] if e["event_id"] == info["event_id"]), {})
         return unit, event
 
     def capture_figure(request: Request) -> Response:
