@@ -263,6 +263,8 @@ class DemoRun:
     #: Where the static HTML report goes, and the time zone of its times.
     html_dir: Path | None = None
     tz: str = "UTC"
+    #: Days of INVENTED quiet history committed before the run (0: none).
+    history_days: float = 7.0
 
     def _spawn(self, argv: list[str], log: str, **kw: Any) -> subprocess.Popen[Any]:
         logs = self.root / "logs"
@@ -330,6 +332,8 @@ class DemoRun:
             export_url = self._start_victoria_metrics()
             collector_thread = self._start_collector(port, export_url, collector_stop)
             self._set_models(devices)
+            if self.history_days > 0:
+                self._commit_history(devices)
             self.timings["setup_s"] = time.monotonic() - t_start
             self._run_homes(devices, port, passwords)
             if export_url:
@@ -409,6 +413,33 @@ class DemoRun:
                     "service_type": "120/240", "channel_names": ["L1", "L2"],
                     "measurement_point": self.street.measurement_point,
                     "feeder": self.street.feeder})
+
+    def _commit_history(self, devices: list[str]) -> None:
+        """INVENTED quiet days before the run (agent/cli/demo_history.py), committed in
+        batches through the store's own commit path."""
+        from agent.cli.demo_history import EPOCH, history_messages
+        from agent.render.pages import zone
+
+        t0 = time.monotonic()
+        messages = history_messages(devices, [role_of(self.street, i) for i in
+                                              range(len(devices))],
+                                    self.street.site, self.street.nominal_v, time.time(),
+                                    self.history_days, zone(self.tz))
+        count = 0
+        with self._store() as store:
+            batch: list[dict[str, Any]] = []
+            for msg in messages:
+                batch.append(msg)
+                if len(batch) == 500:
+                    store.commit_batch(batch)
+                    count, batch = count + len(batch), []
+            if batch:
+                store.commit_batch(batch)
+                count += len(batch)
+        self.timings["history_s"] = time.monotonic() - t0
+        self.notes.append(f"INVENTED history: {count} synthesised 10-min aggregates over "
+                          f"{self.history_days:g} days before the run (epoch {EPOCH}); every "
+                          "event came from samples through the real pipeline")
 
     def _write_home(self, device: str, index: int, port: int, password: str,
                     *, restored: bool = False) -> Path:
@@ -595,6 +626,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="keep everything in this (new or empty) folder; default: a temporary "
                    "folder removed at the end")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
+    p.add_argument("--days", type=float, default=7.0,
+                   help="days of INVENTED quiet history (synthesised 10-min aggregates) "
+                   "before the live run, for the profile and compliance views (0..31; "
+                   "default 7)")
     p.add_argument("--tz", default="UTC",
                    help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_demo)
@@ -607,6 +642,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
         raise UserError(f"--seconds {args.seconds:g}: must be 10..600")
     if not 1.0 <= args.speed <= 100.0:
         raise UserError(f"--speed {args.speed:g}: must be 1..100")
+    if not 0.0 <= args.days <= 31.0:
+        raise UserError(f"--days {args.days:g}: must be 0..31")
+    from agent.render.pages import zone
+
+    try:
+        zone(args.tz)
+    except ValueError as exc:
+        raise UserError(f"--tz: {exc}") from None
     if not mosquitto_available():
         raise UserError(MOSQUITTO_HINT)
     keep = args.dir is not None
@@ -628,6 +671,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     # The HTML report lives in the demo's folder; without --dir that folder is removed at
     # the end, so the report gets a folder of its own.
     run = DemoRun(root, args.homes, args.seconds, args.speed, say, tz=args.tz,
+                  history_days=args.days,
                   html_dir=root / "report" if keep else Path(tempfile.mkdtemp(
                       prefix="halfcycle-demo-report-")))
     try:

@@ -372,21 +372,39 @@ def fleet_timeline(rows: Sequence[tuple[str, Series | None, float | None]],
 
     norm = TwoSlopeNorm(vcenter=0.0, vmin=-12.0, vmax=12.0)
     cmap = matplotlib.colormaps["PuOr_r"]
-    for i, (device, series, nominal) in enumerate(rows):
-        if series is None or not nominal:
-            continue
-        dev_pct = (_nan_reduce(np.nanmean, series.v) / nominal - 1.0) * 100.0
-        x = np.array([matplotlib.dates.date2num(w) for w in _local(series.t, tz)])
-        width = series.interval_s / 86400.0
-        ax.bar(x, 0.8, width=width, bottom=i - 0.4, color=cmap(norm(dev_pct)), align="edge",
-               linewidth=0)
-        del device
+    # One common time grid (at most 800 columns), each home's mean deviation per column;
+    # drawn as one raster inside the SVG so a week of 10-min means stays small.
+    series_rows = [(s, n) for _, s, n in rows if s is not None and n]
+    span: list[float] = []  # x extent, set explicitly (pcolormesh does not autoscale here)
+    if series_rows:
+        t0 = min(float(s.t[0]) for s, _ in series_rows)
+        t1 = max(float(s.t[-1]) + s.interval_s for s, _ in series_rows)
+        step = max(min(s.interval_s for s, _ in series_rows), (t1 - t0) / 800.0)
+        edges = np.arange(t0, t1 + step, step)
+        grid = np.full((len(rows), edges.size - 1), np.nan)
+        for i, (_, series, nominal) in enumerate(rows):
+            if series is None or not nominal:
+                continue
+            pct = (_nan_reduce(np.nanmean, series.v) / nominal - 1.0) * 100.0
+            col = np.clip(np.searchsorted(edges, series.t, side="right") - 1, 0,
+                          edges.size - 2)
+            ok = np.isfinite(pct)
+            sums = np.bincount(col[ok], weights=pct[ok], minlength=edges.size - 1)
+            counts = np.bincount(col[ok], minlength=edges.size - 1)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                grid[i] = np.where(counts > 0, sums / np.maximum(counts, 1), np.nan)
+        x = matplotlib.dates.date2num([datetime.fromtimestamp(float(e), tz) for e in edges])
+        ax.set_facecolor("#e4e1d8")  # no data: grey
+        ax.pcolormesh(x, np.arange(len(rows) + 1) - 0.5, np.ma.masked_invalid(grid),
+                      cmap=cmap, norm=norm, rasterized=True, shading="flat")
+        span += [float(x[0]), float(x[-1])]
     names = [r[0] for r in rows]
     for ev in events:
         if ev.get("device") in names and isinstance(ev.get("start_utc"), int | float):
             i = names.index(ev["device"])
             x0 = matplotlib.dates.date2num(datetime.fromtimestamp(ev["start_utc"], tz))
             ax.plot([x0, x0], [i - 0.45, i + 0.45], color=INK, linewidth=1.2)
+            span.append(x0)
     for fe in fleet_events:
         t = fe.get("start_utc")
         if isinstance(t, int | float):
@@ -394,6 +412,9 @@ def fleet_timeline(rows: Sequence[tuple[str, Series | None, float | None]],
                        color="#c0392b", linewidth=1.0, alpha=0.8)
     ax.set_yticks(range(len(names)), names, fontsize=7)
     ax.set_ylim(len(names) - 0.5, -0.5)
+    if span:
+        pad = max((max(span) - min(span)) * 0.01, 1.0 / 86400)
+        ax.set_xlim(min(span) - pad, max(span) + pad)
     ax.xaxis_date(tz)
     _time_axis(ax, tz)
     sm = matplotlib.cm.ScalarMappable(norm=norm, cmap=cmap)
