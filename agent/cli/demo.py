@@ -644,12 +644,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
         raise UserError(f"--speed {args.speed:g}: must be 1..100")
     if not 0.0 <= args.days <= 31.0:
         raise UserError(f"--days {args.days:g}: must be 0..31")
-    from agent.render.pages import zone
+    from agent.render.cli import check_zone
 
-    try:
-        zone(args.tz)
-    except ValueError as exc:
-        raise UserError(f"--tz: {exc}") from None
+    check_zone(args.tz)
     if not mosquitto_available():
         raise UserError(MOSQUITTO_HINT)
     keep = args.dir is not None

@@ -86,12 +86,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
     if not 0.5 <= args.poll <= 3600:
         raise UserError(f"--poll {args.poll:g}: must be 0.5..3600 s")
     from agent.cli.report import open_store
-    from agent.render.pages import zone
+    from agent.render.cli import check_zone
 
-    try:
-        zone(args.tz)
-    except ValueError as exc:
-        raise UserError(f"--tz: {exc}") from None
+    check_zone(args.tz)
     store = open_store(args.store, args.captures)  # one clear line if it is not a store
     captures = store.captures_dir
     store.close()

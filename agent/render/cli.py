@@ -18,13 +18,18 @@ class HtmlOptionError(ValueError):
     """``--html`` / ``--tz`` cannot be used as given (one line)."""
 
 
-def _check(out_dir: str, tz_name: str) -> Path:
+def check_zone(tz_name: str) -> None:
+    """``--tz``: an IANA time zone name, or HtmlOptionError (one line)."""
     from agent.render.pages import zone
 
     try:
         zone(tz_name)
     except ValueError as exc:
         raise HtmlOptionError(f"--tz: {exc}") from None
+
+
+def _check(out_dir: str, tz_name: str) -> Path:
+    check_zone(tz_name)
     root = Path(out_dir)
     if root.exists() and not root.is_dir():
         raise HtmlOptionError(f"--html {root}: exists and is not a folder")

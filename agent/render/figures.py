@@ -23,6 +23,7 @@ import numpy as np
 from matplotlib.figure import Figure as MplFigure
 
 from agent.render.data import Series, Trace
+from agent.report.fleet import category_tag
 from agent.verdicts.limits import Band
 
 # Our palette: slate ink on warm paper, one hue per IEEE 1159 family.
@@ -93,13 +94,7 @@ def _family(category: str) -> str:
 
 def category_of(ev: Mapping[str, Any]) -> str:
     """IEEE 1159 category of a stored event, with its duration class (``momentary sag``)."""
-    c = ev.get("classification") or {}
-    cat = c.get("ieee1159_category")
-    if not cat:
-        return "unclassified"
-    dur = c.get("ieee1159_duration_class")
-    return f"{dur} {cat}" if dur and dur != cat and cat in ("sag", "swell", "interruption") \
-        else str(cat)
+    return category_tag(ev.get("classification"))
 
 
 def _event_points(events: Sequence[Mapping[str, Any]]) -> dict[str, tuple[list[float],
