@@ -181,6 +181,21 @@ def fleet_figures(store: RecorderStore, report: Mapping[str, Any], tz: tzinfo,
             figures.swells_vs_trips(events)]
 
 
+def add_last_events(units: list[dict[str, Any]], events: Sequence[Mapping[str, Any]]
+                    ) -> list[dict[str, Any]]:
+    """Give each ``unit_now`` verdict dict its latest event (``last_event``: id, kind,
+    category, start, level) from ``events`` (oldest first, as the store returns them)."""
+    last: dict[str, Mapping[str, Any]] = {}
+    for ev in events:
+        last[str(ev.get("device"))] = ev
+    for u in units:
+        latest = last.get(str(u.get("device")))
+        u["last_event"] = None if latest is None else {
+            k: v for k, v in event_row(latest).items()
+            if k in ("event_id", "kind", "category", "start_utc", "level_pu")}
+    return units
+
+
 def fleet_now_rows(verdicts: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
     """Rows of the fleet-now table from ``unit_now`` verdict dicts."""
     rows = []
@@ -190,6 +205,6 @@ def fleet_now_rows(verdicts: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
         rows.append({"device": v.get("device"), "site": v.get("site"),
                      "state": v.get("verdict"), "since": top.get("since"),
                      "reason": top.get("reason") or "", "last_seen": v.get("last_seen_utc"),
-                     "backlog": v.get("outbox_backlog"),
+                     "backlog": v.get("outbox_backlog"), "last_event": v.get("last_event"),
                      "others": [s.get("state") for s in states[1:]]})
     return rows

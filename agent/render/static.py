@@ -84,8 +84,9 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
                               start_utc=start_utc, end_utc=end_utc)
     folder = _Folder(Path(out_dir))
     fig = folder.figure
-    now_rows = pages.fleet_now_rows([v.as_dict() for v in fleet_now(
-        store, now, default_nominal_v=default_nominal_v)])
+    now_rows = pages.fleet_now_rows(pages.add_last_events(
+        [v.as_dict() for v in fleet_now(store, now, default_nominal_v=default_nominal_v)],
+        store.events(start_from=start_utc, start_before=end_utc)))
     fleet_figs = [fig(f) for f in pages.fleet_figures(store, report, tz, start_utc, end_utc)]
     by_name = {f.name: f for f in fleet_figs}
     fleet_events = report.get("fleet_events") or []

@@ -142,14 +142,7 @@ class LivePage:
         with self.store() as store:
             units = [v.as_dict() for v in fleet_now(store, now,
                                                    default_nominal_v=self.default_nominal_v)]
-            last: dict[str, dict[str, Any]] = {}
-            for ev in store.events(start_from=now - self.period_s):
-                last[ev["device"]] = ev
-        for u in units:
-            latest = last.get(str(u.get("device")))
-            u["last_event"] = None if latest is None else {
-                k: v for k, v in pages.event_row(latest).items() if k in (
-                    "event_id", "kind", "category", "start_utc", "level_pu")}
+            pages.add_last_events(units, store.events(start_from=now - self.period_s))
         return {"generated_utc": now, "indicative": INDICATIVE, "time_zone": self.tz_name,
                 "units": units}
 

@@ -51,6 +51,8 @@
       states.slice(1).forEach(function (s) { st.appendChild(document.createTextNode(" ")); st.appendChild(pill(s.state)); });
       cell(tr, time(top.since), "since");
       cell(tr, top.reason || "", "reason");
+      var ev = cell(tr, u.last_event ? u.last_event.category + " " : "–", "event");
+      if (u.last_event) { ev.appendChild(time(u.last_event.start_utc)); }
       cell(tr, time(u.last_seen_utc), "last");
       cell(tr, u.outbox_backlog === null || u.outbox_backlog === undefined ? "–" : String(u.outbox_backlog), "backlog");
       return tr;
