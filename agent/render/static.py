@@ -61,7 +61,7 @@ def _render(folder: _Folder, tz: tzinfo, tz_name: str, title: str, heading: str,
         asset_base="assets/", tz_name=tz_name, version=__version__,
         footer="static report; opens from disk, no network",
         when=lambda t: pages.when(t, tz), fig_src=folder.src,
-        capture_href=lambda c: f"#capture-{c}", unit_href=None,
+        capture_href=lambda c, _device: f"#capture-{c}", unit_href=None,
         invented=invented, show_indicative=show_indicative)
     index = folder.root / "index.html"
     index.write_text(html, encoding="utf-8")

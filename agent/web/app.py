@@ -211,7 +211,8 @@ class LivePage:
             title=title, nav=NAV, asset_base="/static/", tz_name=self.tz_name,
             version=__version__, footer="live page, read-only",
             when=lambda t: pages.when(t, self.tz), invented=None,
-            unit_href=lambda d: f"/units/{d}", capture_href=lambda c: f"#capture-{c}",
+            unit_href=lambda d: f"/units/{d}",
+            capture_href=lambda c, d: f"/units/{d}#capture-{c}",
             **context)
         return HTMLResponse(body, status_code=status_code)
 
