@@ -44,7 +44,7 @@ def test_static_report_renders_offline(demo_dir: Path, shots: Path) -> None:  # 
         driver.get(index.as_uri())
         assert "Supply report" in driver.title
         figures = driver.find_elements("css selector", "figure.plot img")
-        # Fleet (timeline, SARFI, outages), ITIC, SEMI F47, swells vs trips, 5 per home,
+        # Fleet (timeline, SARFI, interruptions), ITIC, SEMI F47, swells vs trips, 5 per home,
         # and one waveform per capture.
         assert len(figures) >= 6 + 5 * 3 + 1
         assert all(f.find_element("xpath", "..").text for f in figures)  # each has a caption

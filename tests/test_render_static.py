@@ -74,7 +74,7 @@ def test_report_html_over_a_week_of_ten_minute_means(tmp_path: Path,
                  "America/Chicago"]) == 0
     figs = _figures(out / "index.html")
     names = [p.stem for p in figs]
-    assert names[:6] == ["fleet-timeline", "sarfi", "outages", "itic", "semi-f47",
+    assert names[:6] == ["fleet-timeline", "sarfi", "interruptions", "itic", "semi-f47",
                          "swells-trips"]
     for dev in ("home-1", "home-2"):
         assert [n for n in names if n.startswith(dev)] == [

@@ -440,28 +440,59 @@ def sarfi_bars(sarfi: Mapping[str, Any]) -> Figure:
     return Figure("sarfi", _svg(fig), caption)
 
 
-def outage_bars(windows: Sequence[Mapping[str, Any]]) -> Figure:
-    """Per home: count and total duration of stored outage windows."""
-    caption = ("Interruptions per home in the period: number of outage windows (restart "
-               "reports and power-loss events, from the fleet report) and their total "
-               "duration; the inputs of IEEE 1366 SAIFI / SAIDI with homes as customers.")
+def interruptions(stats: Mapping[str, Any] | None,
+                  windows: Sequence[Mapping[str, Any]] = ()) -> Figure:
+    """Interruptions per home and the fleet's interruption indices.
+
+    ``stats``: the fleet report's interruption verdict (``per_home`` {device: {short, long,
+    sustained, momentary, minutes}}, ``ieee1366`` {SAIFI, SAIDI_min, CAIDI_min, MAIFI});
+    without it, per-home counts and minutes from the report's ``outage_windows``."""
     per: dict[str, list[float]] = {}
-    for w in windows:
-        d = per.setdefault(str(w.get("device")), [0, 0.0])
-        d[0] += 1
-        d[1] += float(w.get("duration_s") or 0.0)
+    indices: dict[str, Any] = {}
+    if stats and isinstance(stats.get("per_home"), Mapping):
+        for device, h in stats["per_home"].items():
+            per[str(device)] = [float(h.get("short", 0)) + float(h.get("long", 0)),
+                                float(h.get("minutes") or 0.0)]
+        indices = {k: v for k, v in (stats.get("ieee1366") or {}).items()
+                   if k in ("SAIFI", "MAIFI", "SAIDI_min", "CAIDI_min")
+                   and isinstance(v, int | float)}
+    else:
+        for w in windows:
+            d = per.setdefault(str(w.get("device")), [0, 0.0])
+            d[0] += 1
+            d[1] += float(w.get("duration_s") or 0.0) / 60.0
+    caption = ("Interruptions in the period: minutes without supply per home (count above "
+               "each bar; outage windows from power-loss reports and interruption events)"
+               + ("; right: IEEE 1366 indices with monitored homes as customers (SAIFI, "
+                  "SAIDI: sustained > 5 min; MAIFI: momentary), from the fleet report"
+                  if indices else "") + ".")
     if not per:
-        return empty("outages", "no outage windows in the period", caption)
-    fig, ax = _new(7.2, 2.4)
+        return empty("interruptions", "no interruptions in the period", caption)
+    fig = MplFigure(figsize=(7.2, 2.6), facecolor=PAPER)
+    axes = fig.subplots(1, 2, gridspec_kw={"width_ratios": [3, 2]}) if indices else \
+        [fig.add_subplot(1, 1, 1)]
+    for ax in axes:
+        ax.set_facecolor("white")
+        ax.grid(True, color=GRID, linewidth=0.6)
+        ax.tick_params(colors=INK, labelsize=7)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
     names = sorted(per)
-    ax.set_xlim(-0.5, max(len(names), 6) - 0.5)
-    ax.bar(names, [per[n][1] / 60.0 for n in names], color="#8a3b8f")
+    ax = axes[0]
+    ax.bar(names, [per[n][1] for n in names], color="#8a3b8f")
     for i, n in enumerate(names):
-        ax.text(i, per[n][1] / 60.0, f"{int(per[n][0])}×", ha="center", va="bottom",
-                fontsize=7, color=INK)
+        ax.text(i, per[n][1], f"{int(per[n][0])}×", ha="center", va="bottom", fontsize=7,
+                color=INK)
+    ax.set_xlim(-0.5, max(len(names), 6) - 0.5)
     ax.set_ylabel("minutes without supply", color=INK, fontsize=8)
-    ax.tick_params(axis="x", labelsize=7)
-    return Figure("outages", _svg(fig), caption)
+    if indices:
+        keys = list(indices)
+        axes[1].bar(keys, [float(indices[k]) for k in keys], color="#4b7f8c")
+        for i, k in enumerate(keys):
+            axes[1].text(i, float(indices[k]), f"{float(indices[k]):.3g}", ha="center",
+                         va="bottom", fontsize=7, color=INK)
+        axes[1].set_ylabel("per home / minutes", color=INK, fontsize=8)
+    return Figure("interruptions", _svg(fig), caption)
 
 
 def overvoltage_by_hour(series: Series | None, band: Band, tz: tzinfo) -> Figure:

@@ -177,7 +177,8 @@ def fleet_figures(store: RecorderStore, report: Mapping[str, Any], tz: tzinfo,
     return [figures.itic(events), figures.semi_f47(events),
             figures.fleet_timeline(rows, events, report.get("fleet_events") or [], tz),
             figures.sarfi_bars(report.get("sarfi") or {}),
-            figures.outage_bars(report.get("outage_windows") or []),
+            figures.interruptions(report.get("interruptions"),
+                                  report.get("outage_windows") or []),
             figures.swells_vs_trips(events)]
 
 

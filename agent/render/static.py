@@ -95,7 +95,7 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
          "intro": f"State of every unit when the report was written "
                   f"({pages.iso_utc(now)} UTC)."},
         {"id": "fleet", "title": "Fleet",
-         "figures": [by_name["fleet-timeline"], by_name["sarfi"], by_name["outages"]],
+         "figures": [by_name["fleet-timeline"], by_name["sarfi"], by_name["interruptions"]],
          "table": {"head": ["start", "kinds", "homes", "share", "worst [pu]",
                             "worst home", "spread [s]"],
                    "rows": [[pages.when(e.get("start_utc"), tz),
@@ -108,7 +108,9 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
         {"id": "solar", "title": "Solar: swells and inverter trips",
          "figures": [by_name["swells-trips"]]},
         {"id": "verdicts", "title": "Verdicts",
-         "verdicts": list(pages.verdict_rows(report.get("devices") or []))},
+         # Every verdict in the report, wherever it sits (the "now" list is shown above).
+         "verdicts": list(pages.verdict_rows({k: v for k, v in report.items()
+                                              if k != "now"}))},
     ]
     for dev in store.devices():
         unit = pages.unit_context(store, dev["device"])
