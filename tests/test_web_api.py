@@ -1,3 +1,4 @@
+# ruff: noqa: F811  (pytest fixtures imported from _store_helpers shadow their name)
 """The live page's JSON twins against its OpenAPI description (validated with jsonschema,
 an independent JSON Schema 2020-12 implementation), fuzzed with hypothesis (no 500s), its
 authentication (bearer token, scrypt password file per RFC 7914) and read-only store access.
@@ -18,17 +19,19 @@ from urllib.parse import quote
 import jsonschema
 import pytest
 from _pages_helpers import ROOT, copy_store, demo_dir  # noqa: F401  (fixture)
+from _store_helpers import msg, pg_database, store, store_url  # noqa: F401  (fixtures)
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from starlette.testclient import TestClient
 
+from agent.store.recorder import RecorderStore
 from agent.web.app import create_app, open_read_only
 from agent.web.auth import Auth, AuthError, hash_password, is_loopback
 from agent.web.openapi import openapi_document
 
 
 @pytest.fixture(scope="module")
-def store_copy(demo_dir: Path, tmp_path_factory: pytest.TempPathFactory  # noqa: F811
+def store_copy(demo_dir: Path, tmp_path_factory: pytest.TempPathFactory
                ) -> tuple[str, Path]:
     return copy_store(demo_dir, tmp_path_factory.mktemp("api-store"))
 
@@ -220,3 +223,24 @@ def test_hash_password_command_prints_a_usable_line(tmp_path: Path) -> None:
     assert auth is not None
     raw = base64.b64encode(b"viewer:long enough secret").decode()
     assert auth.allows(f"Basic {raw}")
+
+
+@pytest.mark.parametrize("store_url", ["sqlite", "postgresql"], indirect=True)
+def test_live_page_over_both_store_engines_is_read_only(store: RecorderStore, store_url: str,
+                                                        tmp_path: Path) -> None:
+    model = {"nominal_v": 230.0, "nominal_hz": 50.0, "measurement_point": "service"}
+    store.commit_batch([msg("status", 1, device="flat-7", state="online", t=1_700_000_000.0,
+                            site_model=model, outbox_depth=12)])
+    c = TestClient(create_app(store_url, tmp_path / "captures"))
+    fleet = c.get("/api/v1/fleet").json()
+    assert [(u["device"], u["outbox_backlog"]) for u in fleet["units"]] == [("flat-7", 12)]
+    unit = c.get("/api/v1/units/flat-7").json()
+    # EN 50160 for a 50-Hz supply: 230 V ±10 % = 207–253 V (pub).
+    assert (unit["bands"][0]["low_v"], unit["bands"][0]["high_v"]) == (207.0, 253.0)
+    ro = open_read_only(store_url, tmp_path / "captures")
+    try:
+        with pytest.raises(Exception, match=r"(?i)read.?only|query_only"):
+            ro.db.execute("DELETE FROM devices")
+    finally:
+        ro.close()
+    assert [d["device"] for d in store.devices()] == ["flat-7"]
