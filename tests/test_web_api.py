@@ -87,7 +87,11 @@ def test_json_twins_validate_against_the_openapi_description(client: TestClient)
 
 
 def test_html_pages_and_their_twins_show_the_same_units(client: TestClient) -> None:
-    html = client.get("/").text
+    page = client.get("/")
+    # Only its own scripts, styles and images (the browser test sees no CSP violations).
+    assert "default-src 'self'" in page.headers["content-security-policy"]
+    assert page.headers["x-content-type-options"] == "nosniff"
+    html = page.text
     for unit in client.get("/api/v1/fleet").json()["units"]:
         assert f'data-device="{unit["device"]}"' in html
     assert html.count("not a certified instrument") == 1  # INDICATIVE once
@@ -160,6 +164,7 @@ def test_wrong_or_missing_token_is_401(store_copy: tuple[str, Path], tmp_path: P
     assert wrong.status_code == 401 and wrong.headers["www-authenticate"].startswith("Bearer")
     assert c.get("/", headers={"Authorization": "Bearer " + token}).status_code == 200
     assert c.get("/static/hc.css").status_code == 401  # nothing is served without it
+    assert c.get("/api/v1/fleet").headers["x-content-type-options"] == "nosniff"
 
 
 def test_password_file_with_scrypt_hashes(store_copy: tuple[str, Path], tmp_path: Path) -> None:

@@ -36,7 +36,7 @@ from agent.store.comtrade import write_comtrade
 from agent.store.db import StoreError
 from agent.store.recorder import RecorderStore
 from agent.verdicts import INDICATIVE
-from agent.web.auth import Auth, RequireAuth
+from agent.web.auth import Auth, RequireAuth, SecurityHeaders
 from agent.web.openapi import openapi_document
 
 API = "/api/v1"
@@ -219,7 +219,8 @@ class LivePage:
 
 def create_app(store_url: str, captures_dir: str | Path, *, auth: Auth | None = None,
                **options: Any) -> Any:
-    """The ASGI app; wrapped in :class:`RequireAuth` when ``auth`` is given."""
+    """The ASGI app: security headers on every response; wrapped in :class:`RequireAuth`
+    when ``auth`` is given."""
     live = LivePage(store_url, captures_dir, **options)
 
     def fleet_json(request: Request) -> JSONResponse:
@@ -336,4 +337,4 @@ def create_app(store_url: str, captures_dir: str | Path, *, auth: Auth | None = 
     ]
     app = Starlette(routes=routes, exception_handlers={HTTPException: http_error})
     app.state.live = live
-    return RequireAuth(app, auth) if auth is not None else app
+    return SecurityHeaders(RequireAuth(app, auth) if auth is not None else app)

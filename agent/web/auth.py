@@ -147,5 +147,35 @@ class RequireAuth:
         await send({"type": "http.response.body", "body": body})
 
 
+#: Every response: the page loads only its own scripts, styles and images (no CDN, no inline
+#: script), is not framed, and its types are not sniffed.
+SECURITY_HEADERS = (
+    (b"content-security-policy", b"default-src 'self'; img-src 'self' data:; "
+                                 b"object-src 'none'; frame-ancestors 'none'; base-uri 'none'"),
+    (b"x-content-type-options", b"nosniff"),
+    (b"referrer-policy", b"no-referrer"),
+)
+
+
+class SecurityHeaders:
+    """ASGI middleware adding :data:`SECURITY_HEADERS` to every HTTP response."""
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: MutableMapping[str, Any], receive: Receive,
+                       send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+
+        async def with_headers(message: MutableMapping[str, Any]) -> None:
+            if message["type"] == "http.response.start":
+                message["headers"] = [*message.get("headers", []), *SECURITY_HEADERS]
+            await send(message)
+
+        await self.app(scope, receive, with_headers)
+
+
 def new_token() -> str:
     return secrets.token_urlsafe(32)
