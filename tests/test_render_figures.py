@@ -131,7 +131,7 @@ def test_verdict_rows_render_any_verdict_generically() -> None:
                            "verdicts": {"future": new}}]}
     rows = list(pages.verdict_rows(report))
     assert [r["rule"] for r in rows] == ["ANSI C84.1", "a rule nobody has written yet"]
-    assert rows[1]["where"] == "devices[0].verdicts.future" and rows[1]["basis"] == "n: 3"
+    assert rows[1]["where"] == "d1.verdicts.future" and rows[1]["basis"] == "n: 3"
 
 
 def test_times_in_the_site_zone_with_utc_on_hover() -> None:

@@ -35,13 +35,14 @@ def _level_pu(role: dict[str, Any], hour: float, sunny: float, rng: np.random.Ge
     """Invented per-unit level of one home at a local hour of day."""
     base = float(role.get("level_pu", 1.0)) if role["role"] in ("solar", "plain") else 1.0
     if role["role"] == "solar":
-        # The solar home's steady 1.055 pu includes its export; at night it sits lower.
-        base -= 0.025
-        base += 0.03 * sunny * max(0.0, math.sin(math.pi * (hour - 7.0) / 10.0)) \
+        # The solar home's steady level includes its export at midday; at night it sits
+        # lower. Its peak stays near the live run's level (inside ANSI C84.1 Range B).
+        base -= 0.028
+        base += 0.025 * sunny * max(0.0, math.sin(math.pi * (hour - 7.0) / 10.0)) \
             if 7.0 <= hour <= 17.0 else 0.0
     evening = -0.018 * math.exp(-((hour - 19.0) / 2.0) ** 2)  # evening load peak
     night = 0.008 * math.exp(-((hour - 3.5) / 2.5) ** 2)  # light load before dawn
-    return base + evening + night + float(rng.normal(0.0, 0.0025))
+    return base + evening + night + float(rng.normal(0.0, 0.0015))
 
 
 def history_messages(devices: Sequence[str], roles: Sequence[dict[str, Any]], site: str,
@@ -60,7 +61,7 @@ def history_messages(devices: Sequence[str], roles: Sequence[dict[str, Any]], si
             local = datetime.fromtimestamp(t + TEN_MIN_S / 2, tz)
             hour = local.hour + local.minute / 60.0
             pu = _level_pu(role, hour, sunny[local.date()], rng)
-            legs = (pu * nominal_v, (pu + float(rng.normal(0.0, 0.002))) * nominal_v)
+            legs = (pu * nominal_v, (pu + float(rng.normal(0.0, 0.001))) * nominal_v)
             agg = Aggregate(kind="10min", t_utc=t, duration_s=TEN_MIN_S,
                             rms=tuple(round(v, 3) for v in legs),
                             thd=(round(float(rng.uniform(0.018, 0.03)), 4),) * 2,

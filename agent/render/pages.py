@@ -77,7 +77,10 @@ def verdict_rows(obj: Any, where: str = "") -> Iterator[dict[str, Any]]:
             yield from verdict_rows(value, f"{where}.{key}" if where else str(key))
     elif isinstance(obj, list):
         for i, value in enumerate(obj):
-            yield from verdict_rows(value, f"{where}[{i}]")
+            # A unit's section is named by its unit, not by its place in the list.
+            name = value.get("device") if isinstance(value, Mapping) else None
+            label = str(name) if isinstance(name, str) else f"{where}[{i}]"
+            yield from verdict_rows(value, label)
 
 
 def _short(value: Any) -> str:

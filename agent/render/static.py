@@ -107,10 +107,11 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
          "figures": [by_name["itic"], by_name["semi-f47"]]},
         {"id": "solar", "title": "Solar: swells and inverter trips",
          "figures": [by_name["swells-trips"]]},
-        {"id": "verdicts", "title": "Verdicts",
-         # Every verdict in the report, wherever it sits (the "now" list is shown above).
+        {"id": "verdicts", "title": "Fleet verdicts",
+         # Every fleet-level verdict in the report, wherever it sits; each home's own are in
+         # its section, the "now" list is the table above.
          "verdicts": list(pages.verdict_rows({k: v for k, v in report.items()
-                                              if k != "now"}))},
+                                              if k not in ("now", "devices")}))},
     ]
     for dev in store.devices():
         unit = pages.unit_context(store, dev["device"])
@@ -128,12 +129,15 @@ def write_store_report(store: RecorderStore, out_dir: str | Path, *, tz_name: st
                 waves.append({"capture_id": cid, "figure": fig(wf, prefix),
                               "cfg": f"comtrade/{cfg.name}", "dat": f"comtrade/{dat.name}"})
         nominal = unit["nominal_v"]
+        section: Mapping[str, Any] = next((d for d in report.get("devices") or []
+                                           if d.get("device") == dev["device"]), {})
         sections.append({
             "id": f"unit-{_safe(dev['device'])}", "title": f"Home {dev['device']}",
             "intro": f"site {unit['site']}; declared {nominal:g} V" if nominal else
                      f"site {unit['site']}; declared voltage unknown",
             "figures": [fig(f, prefix) for f in pages.unit_figures(store, unit, tz, start_utc,
                                                                    end_utc)],
+            "verdicts": list(pages.verdict_rows(section)),
             "events": [pages.event_row(e) for e in unit_events], "waves": waves})
     return _render(folder, tz, tz_name, "Supply report", "Supply report",
                    f"{len(store.devices())} homes; period "
