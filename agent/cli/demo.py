@@ -579,9 +579,11 @@ class DemoRun:
             report = fleet_report(store, planned_stop_after=self.stopped_after)
             from agent.render.cli import write_html_for_store
 
+            t_html = time.monotonic()
             html = write_html_for_store(store, str(self.html_dir or self.root / "report"),
                                         self.tz, report=report,
                                         invented=True)
+            self.timings["html_s"] = time.monotonic() - t_html
         if self.stopped_after is not None:
             self.notes.append("the demo stopped every agent at the end of its recording: "
                               "those units read offline, as planned")
@@ -692,6 +694,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         t = demo["timings_s"]
         sys.stdout.write(f"HTML report: {demo['html']}\n")
         sys.stdout.write(f"demo took {t.get('total_s', 0):.1f} s"
+                         f" (+ {t.get('html_s', 0):.1f} s for the HTML report)"
                          + (f"; files kept in {root}\n" if keep else "\n"))
         sys.stdout.write(INVENTED_BANNER + "\n")
     return 0 if run.complete else 1
