@@ -19,9 +19,13 @@ from agent.web.app import create_app
 
 
 @pytest.fixture(scope="module")
-def shots(tmp_path_factory: pytest.TempPathFactory) -> Path:
+def shots(tmp_path_factory: pytest.TempPathFactory, request: pytest.FixtureRequest) -> Path:
+    """Where the screenshots are kept (a pytest temporary folder); printed in the run."""
     path = tmp_path_factory.mktemp("screenshots")
-    print(f"\nscreenshots: {path}")
+    capture = request.config.pluginmanager.get_plugin("capturemanager")
+    if capture is not None:
+        with capture.global_and_fixture_disabled():
+            print(f"\nscreenshots: {path}")
     return path
 
 
