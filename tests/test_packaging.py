@@ -31,3 +31,10 @@ def test_wheel_carries_resources_and_finds_them(tmp_path: Path) -> None:
     assert Path(broker_dir) == site / "agent" / "_bundled" / "broker-config"
     assert (Path(examples) / "invented-street.wav").is_file()
     assert names.split(",") == schemas
+    # The page templates and their CSS/JS travel as package data (report --html, serve).
+    with zipfile.ZipFile(wheel) as z:
+        wheel_files = set(z.namelist())
+    for part in ("agent/render/templates/base.html", "agent/render/templates/fleet.html",
+                 "agent/render/static/hc.css", "agent/render/static/hc.js",
+                 "agent/render/static/live.js"):
+        assert part in wheel_files, part

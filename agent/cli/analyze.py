@@ -60,6 +60,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="where the recording was taken, for the ANSI C84.1 limits (service "
                    "entrance or a receptacle; default service)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--html", metavar="DIR", default=None,
+                   help="also write a static HTML report with figures: DIR/index.html")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_analyze)
 
 
@@ -188,6 +192,10 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         nominal_candidates=candidates,
         measurement_point=args.point,
     )
+    if args.html:
+        from agent.render.cli import write_html_for_analysis
+
+        write_html_for_analysis(result, args.html, args.tz, invented=args.file is None)
     if args.json:
         json.dump(result, sys.stdout, allow_nan=False)
         sys.stdout.write("\n")

@@ -260,6 +260,11 @@ class DemoRun:
     stopped_after: float | None = None
     #: Every home ran and its outbox drained.
     complete: bool = False
+    #: Where the static HTML report goes, and the time zone of its times.
+    html_dir: Path | None = None
+    tz: str = "UTC"
+    #: Days of INVENTED quiet history committed before the run (0: none).
+    history_days: float = 7.0
 
     def _spawn(self, argv: list[str], log: str, **kw: Any) -> subprocess.Popen[Any]:
         logs = self.root / "logs"
@@ -327,6 +332,8 @@ class DemoRun:
             export_url = self._start_victoria_metrics()
             collector_thread = self._start_collector(port, export_url, collector_stop)
             self._set_models(devices)
+            if self.history_days > 0:
+                self._commit_history(devices)
             self.timings["setup_s"] = time.monotonic() - t_start
             self._run_homes(devices, port, passwords)
             if export_url:
@@ -406,6 +413,33 @@ class DemoRun:
                     "service_type": "120/240", "channel_names": ["L1", "L2"],
                     "measurement_point": self.street.measurement_point,
                     "feeder": self.street.feeder})
+
+    def _commit_history(self, devices: list[str]) -> None:
+        """INVENTED quiet days before the run (agent/cli/demo_history.py), committed in
+        batches through the store's own commit path."""
+        from agent.cli.demo_history import EPOCH, history_messages
+        from agent.render.pages import zone
+
+        t0 = time.monotonic()
+        messages = history_messages(devices, [role_of(self.street, i) for i in
+                                              range(len(devices))],
+                                    self.street.site, self.street.nominal_v, time.time(),
+                                    self.history_days, zone(self.tz))
+        count = 0
+        with self._store() as store:
+            batch: list[dict[str, Any]] = []
+            for msg in messages:
+                batch.append(msg)
+                if len(batch) == 500:
+                    store.commit_batch(batch)
+                    count, batch = count + len(batch), []
+            if batch:
+                store.commit_batch(batch)
+                count += len(batch)
+        self.timings["history_s"] = time.monotonic() - t0
+        self.notes.append(f"INVENTED history: {count} synthesised 10-min aggregates over "
+                          f"{self.history_days:g} days before the run (epoch {EPOCH}); every "
+                          "event came from samples through the real pipeline")
 
     def _write_home(self, device: str, index: int, port: int, password: str,
                     *, restored: bool = False) -> Path:
@@ -543,6 +577,13 @@ class DemoRun:
 
         with self._store() as store:
             report = fleet_report(store, planned_stop_after=self.stopped_after)
+            from agent.render.cli import write_html_for_store
+
+            t_html = time.monotonic()
+            html = write_html_for_store(store, str(self.html_dir or self.root / "report"),
+                                        self.tz, report=report,
+                                        invented=True)
+            self.timings["html_s"] = time.monotonic() - t_html
         if self.stopped_after is not None:
             self.notes.append("the demo stopped every agent at the end of its recording: "
                               "those units read offline, as planned")
@@ -553,7 +594,7 @@ class DemoRun:
                       for h in self.homes_run],
             "seconds": self.seconds, "speed": self.speed, "dir": str(self.root),
             "timings_s": {k: round(v, 2) for k, v in self.timings.items()},
-            "notes": self.notes, "complete": self.complete,
+            "notes": self.notes, "complete": self.complete, "html": str(html.resolve()),
         }
         return report
 
@@ -587,6 +628,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="keep everything in this (new or empty) folder; default: a temporary "
                    "folder removed at the end")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
+    p.add_argument("--days", type=float, default=7.0,
+                   help="days of INVENTED quiet history (synthesised 10-min aggregates) "
+                   "before the live run, for the profile and compliance views (0..31; "
+                   "default 7)")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_demo)
 
 
@@ -597,6 +644,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
         raise UserError(f"--seconds {args.seconds:g}: must be 10..600")
     if not 1.0 <= args.speed <= 100.0:
         raise UserError(f"--speed {args.speed:g}: must be 1..100")
+    if not 0.0 <= args.days <= 31.0:
+        raise UserError(f"--days {args.days:g}: must be 0..31")
+    from agent.render.cli import check_zone
+
+    check_zone(args.tz)
     if not mosquitto_available():
         raise UserError(MOSQUITTO_HINT)
     keep = args.dir is not None
@@ -615,7 +667,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from agent import logs
 
     logs.configure("error")  # the collector thread logs here; keep the terminal readable
-    run = DemoRun(root, args.homes, args.seconds, args.speed, say)
+    # The HTML report lives in the demo's folder; without --dir that folder is removed at
+    # the end, so the report gets a folder of its own.
+    run = DemoRun(root, args.homes, args.seconds, args.speed, say, tz=args.tz,
+                  history_days=args.days,
+                  html_dir=root / "report" if keep else Path(tempfile.mkdtemp(
+                      prefix="halfcycle-demo-report-")))
     try:
         report = run.run()
     finally:
@@ -635,7 +692,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
         demo = report["demo"]
         sys.stdout.write("\n" + "\n".join(f"note: {n}" for n in demo["notes"]) + "\n")
         t = demo["timings_s"]
+        sys.stdout.write(f"HTML report: {demo['html']}\n")
         sys.stdout.write(f"demo took {t.get('total_s', 0):.1f} s"
+                         f" (+ {t.get('html_s', 0):.1f} s for the HTML report)"
                          + (f"; files kept in {root}\n" if keep else "\n"))
         sys.stdout.write(INVENTED_BANNER + "\n")
     return 0 if run.complete else 1

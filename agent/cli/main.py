@@ -16,11 +16,12 @@ from collections.abc import Sequence
 
 from agent import __version__
 from agent.config import ConfigError
+from agent.render.cli import HtmlOptionError
 from agent.store.db import StoreError
 
 # Command modules, in the order they appear in --help.
 COMMANDS = ("analyze", "calibrate", "edge", "collect", "capture", "broker", "report", "export",
-            "demo")
+            "serve", "demo")
 
 
 class UserError(Exception):
@@ -55,7 +56,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         code = int(args.func(args) or 0)
         sys.stdout.flush()  # a closed pipe shows here, inside the handler below
         return code
-    except (UserError, ConfigError, StoreError) as exc:
+    except (UserError, ConfigError, StoreError, HtmlOptionError) as exc:
         print(f"halfcycle {args.command}: error: {exc}", file=sys.stderr)
         return 2
     except BrokenPipeError:

@@ -47,6 +47,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="IEEE 1547-2018 abnormal-performance category I, II or III for "
                    "'would the inverter have tripped' (default II)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--html", metavar="DIR", default=None,
+                   help="also write a static HTML report with figures: DIR/index.html")
+    p.add_argument("--tz", default="UTC",
+                   help="time zone of the HTML report's times (IANA name, e.g. Europe/Berlin)")
     p.set_defaults(func=cmd_report)
 
 
@@ -111,6 +115,11 @@ def cmd_report(args: argparse.Namespace) -> int:
                               start_utc=since, end_utc=until,
                               averaging_window_s=60.0 * args.window,
                               inverter_category=args.inverter_category)
+        if args.html:
+            from agent.render.cli import write_html_for_store
+
+            write_html_for_store(store, args.html, args.tz, report=report, now=now,
+                                 start_utc=since, end_utc=until, default_nominal_v=args.nominal)
     except StoreError as exc:
         raise UserError(f"--store {args.store}: {exc}") from None
     finally:

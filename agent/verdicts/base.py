@@ -9,6 +9,10 @@ from typing import Any, Literal
 #: ``pub`` seen in public summaries of the standard, ``mem`` from memory, ``cp`` common practice.
 Confidence = Literal["pub", "mem", "cp"]
 
+#: How each confidence mark reads in text and on pages.
+CONFIDENCE_WORDS: dict[str, str] = {"pub": "published", "mem": "from memory",
+                                    "cp": "common practice"}
+
 #: Said once per report beside the verdicts, in every rendering.
 INDICATIVE = ("indicative: a home monitor, not a certified instrument; "
               "not evidence of a utility's compliance")
