@@ -9,7 +9,7 @@ from typing import Any
 
 import pytest
 
-from agent.collect.outages import (
+from agent.store.outages import (
     WILL_DELAY_FACTOR,
     OutageWindow,
     device_outage_windows,

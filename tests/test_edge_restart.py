@@ -81,7 +81,7 @@ def test_planned_restart_is_no_outage_but_a_kill_is(tmp_path: Path) -> None:
     # Issue 7 item 5, on real parts: Mosquitto with the project's broker-config, the agent as
     # a subprocess, a collector with an SQLite store. A SIGTERM (as systemd stops a service)
     # is a clean stop: the agent says so before it goes, and its restart is no outage. A
-    # SIGKILL (the monitor lost power) followed by a restart is one (agent.collect.outages
+    # SIGKILL (the monitor lost power) followed by a restart is one (agent.store.outages
     # rule 2).
     fleet = make_fleet(tmp_path, 1, duration=120.0, swell_device=None, dip_at=100.0)
     device = fleet.devices[0]

@@ -43,7 +43,7 @@ def test_restart_report_gives_a_window_that_outlives_the_status(store: RecorderS
     assert store.devices()[0]["status"]["state"] == "heartbeat"
     (w,) = store.outage_windows()
     # Window from when the agent last ran to its own start, t - uptime_s (restart rule in
-    # agent.collect.outages, module docstring rule 2): T0 .. T0 + 120 s.
+    # agent.store.outages, module docstring rule 2): T0 .. T0 + 120 s.
     assert (w.device, w.site, w.start_utc, w.end_utc) == ("dev-1", "site-1", T0, T0 + 120.0)
     assert w.sources == ("restart_report",) and w.duration_s == pytest.approx(120.0)
     # A redelivered report changes nothing (idempotent on device, epoch, seq).
@@ -59,7 +59,7 @@ def test_power_loss_event_gives_a_window(store: RecorderStore) -> None:
         event(3, "ev-ok", "closed", end_utc=start + 1.0, ended_by="recovery"),
     ])
     (w,) = store.outage_windows()
-    # Last-gasp rule: event start to its inferred end (agent.collect.outages rule 2).
+    # Last-gasp rule: event start to its inferred end (agent.store.outages rule 2).
     assert (w.device, w.start_utc, w.end_utc, w.sources) == (
         "dev-1", start, start + 7.5, ("last_gasp",))
     # A newer version of the same event no longer ended by power loss: its window goes.
@@ -102,7 +102,7 @@ def test_most_of_a_site_out_together_is_one_site_outage(store: RecorderStore) ->
     assert so.site == "site-a" and so.devices == ("a0", "a1", "a2")
     assert so.devices_monitored == 4 and so.peak_out == 3
     assert so.fraction_affected == pytest.approx(0.75)  # 3 / 4
-    # Median start and end of the three windows (agent.collect.outages rule 3).
+    # Median start and end of the three windows (agent.store.outages rule 3).
     assert (so.start_utc, so.end_utc) == (T0 + 1.0, T0 + 61.0)
     # With a lower bar, site B's two of four (50 %) count too.
     assert {s.site for s in store.site_outages(fraction=0.4)} == {"site-a", "site-b"}

@@ -14,7 +14,7 @@ are written in bulk (``executemany``) at the end of the batch. A batch is first 
 without per-message savepoints; only if something in it is refused is that attempt undone and
 the batch applied again with one savepoint per message (still in the same transaction).
 
-Outage windows (rules in :mod:`agent.collect.outages`) are kept one per report, from a
+Outage windows (rules in :mod:`agent.store.outages`) are kept one per report, from a
 device's restart report (a sequenced online status with ``last_ran``, unless it says
 ``last_stop = "planned"``: a clean stop and start is no outage) and from each event closed
 with ``ended_by = "power_loss"``; a Last Will only marks the device offline, and so does a
@@ -46,18 +46,18 @@ from typing import Any, NamedTuple
 
 import msgpack
 
-from agent.collect.outages import (
+from agent.events.types import Capture, dip_duration_of
+from agent.store import alerts as _alerts
+from agent.store import trend as trend_codec
+from agent.store.db import Database, StoreError, describe_url, first_line
+from agent.store.outages import (
     OutageWindow,
     SiteOutage,
     device_outage_windows,
     last_gasp_window,
     restart_window,
 )
-from agent.collect.outages import site_outages as _site_outages
-from agent.events.types import Capture, dip_duration_of
-from agent.store import alerts as _alerts
-from agent.store import trend as trend_codec
-from agent.store.db import Database, StoreError, describe_url, first_line
+from agent.store.outages import site_outages as _site_outages
 
 MESSAGE_TYPES = ("summary", "aggregate", "event", "capture", "status", "gap")
 EVENT_STATES = ("open", "closed")
@@ -1697,7 +1697,7 @@ class RecorderStore:
         one site or all, sorted by (start, device).
 
         ``merged`` (default): the windows of one device that overlap or touch are one window
-        (:func:`agent.collect.outages.device_outage_windows`, sources ``restart_report`` and
+        (:func:`agent.store.outages.device_outage_windows`, sources ``restart_report`` and
         ``last_gasp``); False: one window per stored report. ``start_from``/``end_before``
         [s UTC]: only windows overlapping ``[start_from, end_before)``.
         """
@@ -1728,7 +1728,7 @@ class RecorderStore:
                      start_from: float | None = None, end_before: float | None = None
                      ) -> list[SiteOutage]:
         """Site-level outages: periods when more than ``fraction`` of a site's devices were
-        out at once (:func:`agent.collect.outages.site_outages` over :meth:`outage_windows`;
+        out at once (:func:`agent.store.outages.site_outages` over :meth:`outage_windows`;
         a site's devices are those the store knows at that site, plus any with a window
         there)."""
         windows = self.outage_windows(site, start_from=start_from, end_before=end_before)

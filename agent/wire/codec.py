@@ -45,7 +45,7 @@ SCHEMA_VERSION = 1
 SCHEMA_VERSIONS: dict[str, int] = {"event": 2, "status": 2, "aggregate": 2}
 WRITE_VERSIONS = SCHEMA_VERSIONS
 #: The ``reason`` of the offline status and retained presence a clean stop sends; the restart
-#: after it reports ``last_stop = "planned"`` (agent.publish.edge, agent.collect.outages).
+#: after it reports ``last_stop = "planned"`` (agent.publish.edge, agent.store.outages).
 PLANNED_STOP = "planned_stop"
 HARMONIC_EXP = -4          # individual harmonics travel in units of 0.01 % of the fundamental
 F64 = npt.NDArray[np.float64]
