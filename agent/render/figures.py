@@ -25,6 +25,7 @@ from matplotlib.figure import Figure as MplFigure
 from agent.render.data import Series, Trace
 from agent.report.fleet import category_tag
 from agent.verdicts.base import CONFIDENCE_WORDS
+from agent.verdicts.inverter import IEEE1547_DEFAULTS
 from agent.verdicts.limits import Band
 
 # Our palette: slate ink on warm paper, one hue per IEEE 1159 family.
@@ -44,9 +45,10 @@ ITIC_LOWER = ((0.02, 0.0), (0.02, 0.7), (0.5, 0.7), (0.5, 0.8), (10.0, 0.8), (10
 # SEMI F47 ride-through envelope (tests/SOURCES.md "SEMI F47", pub): 50 % for 200 ms, 70 %
 # for 0.5 s, 80 % for 1 s; nothing required below 50 ms, nothing beyond 1 s.
 SEMI_F47 = ((0.05, 0.5), (0.2, 0.5), (0.2, 0.7), (0.5, 0.7), (0.5, 0.8), (1.0, 0.8))
-# IEEE 1547-2018 Category II default over-voltage trips (tests/SOURCES.md "IEEE 1547-2018
-# default trip settings", pub): (name, pu, clearing time [s]).
-INVERTER_OV_TRIPS = (("OV2", 1.20, 0.16), ("OV1", 1.10, 2.0))
+# IEEE 1547-2018 Category II default over-voltage trips, from the inverter verdict's table
+# (tests/SOURCES.md "IEEE 1547-2018 default trip settings", pub): (name, pu, clearing [s]).
+INVERTER_OV_TRIPS = tuple((name, pu, clearing) for name, side, pu, clearing
+                          in IEEE1547_DEFAULTS["II"] if side == "over")
 
 
 @dataclass(frozen=True)
