@@ -115,7 +115,11 @@ def test_fleet_events_reach_the_store_classified(fleet) -> None:
         assert np.allclose(rms_min[quiet], 230.0, atol=0.005 * 230)
         # Frequency of the invented 50-Hz supply within 10 mHz (IEC 61000-4-30 Ed.3 Class A
         # frequency uncertainty, from memory: tests/SOURCES.md).
-        assert np.allclose(hz[quiet], 50.0, atol=0.01)
+        # Only the agent's last second may lack a frequency: the source stops inside it,
+        # before a whole cycle closes, and a missing value is sent as missing, not guessed.
+        missing = ~np.isfinite(hz)
+        assert not missing.any() or (missing.sum() == 1 and missing[np.argmax(t)])
+        assert np.allclose(hz[quiet & ~missing], 50.0, atol=0.01)
         # 0.8 s at 115 %: IEEE 1159 momentary swell (30 cycles-3 s, 1.1-1.4 pu).
         assert swell["classification"]["ieee1159_duration_class"] == "momentary"
         # Each event has its start and end captures, reassembled from chunks.
