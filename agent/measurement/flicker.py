@@ -400,7 +400,7 @@ class FlickerMeter:
     def reset(self, at_index: int | None) -> None:
         """Restart the filters (start, gap); values settle for SETTLE_S."""
         c = self.channels
-        self._acc = np.zeros((c, 0))          # squares not yet a full group of D samples
+        self._acc: npt.NDArray[np.floating] = np.zeros((c, 0))  # not yet a group of D samples
         self._acc_start: int | None = at_index
         self._dec = np.zeros((c, 0))          # decimated values not yet a full chunk
         self._dec_first = 0                   # sample index of self._dec[:, 0]
@@ -419,18 +419,18 @@ class FlickerMeter:
             self.reset(None)
         if self._acc_start is None:
             self._acc_start = start           # groups and chunks anchored to the stream
-        sq = np.square(rows)                   # float32 rows: sums of D squares lose < 1e-6
-        buf = np.concatenate([self._acc, sq], axis=1) if self._acc.shape[1] else sq
+        buf = np.concatenate([self._acc, rows], axis=1) if self._acc.shape[1] else rows
         groups = buf.shape[1] // self.decim
         used = groups * self.decim
         if groups:
             if not self._dec.shape[1]:
                 self._dec_first = self._acc_start
-            dec = buf[:, :used].reshape(self.channels, groups, self.decim).sum(
-                axis=2, dtype=np.float64)
+            # Sums of D squares in float64 (exact squares of the float32 volts), in one call.
+            g = buf[:, :used].reshape(self.channels, groups, self.decim)
+            dec = np.einsum("cgd,cgd->cg", g, g, dtype=np.float64)
             dec *= 1.0 / self.decim
             self._dec = np.concatenate([self._dec, dec], axis=1) if self._dec.shape[1] else dec
-        self._acc = buf[:, used:]
+        self._acc = buf[:, used:].copy()
         self._acc_start += used
         out: list[FlickerInterval] = []
         while self._dec.shape[1] >= CHUNK:

@@ -279,8 +279,13 @@ def thd_from_subgroups(ysg: F64) -> F64:
     ----------
     IEC 61000-4-7 Ed.2 clause 3 (THDS, subgroup total harmonic distortion).
     """
-    fund = ysg[..., 0]
-    rest = np.sqrt((ysg[..., 1:] ** 2).sum(axis=-1))
+    return thd_from_squares(ysg[..., 0], ysg**2)
+
+
+def thd_from_squares(fund: F64, squares: F64) -> F64:
+    """:func:`thd_from_subgroups` given Ysg_1 and the squares of every Ysg_h (h = 1..H) along
+    the last axis, when the caller needs the squares anyway."""
+    rest = np.sqrt(squares[..., 1:].sum(axis=-1))
     return np.divide(rest, fund, out=np.full(fund.shape, np.nan), where=fund > 0)
 
 
