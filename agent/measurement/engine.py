@@ -22,7 +22,7 @@ import numpy as np
 import numpy.typing as npt
 
 from agent.acquisition.base import Block, SourceInfo
-from agent.acquisition.timebase import Timebase
+from agent.acquisition.timebase import Timebase, utc_many
 from agent.events.types import Thresholds
 from agent.measurement.aggregate import rms_aggregate
 from agent.measurement.conditioning import (
@@ -407,8 +407,7 @@ class MeasurementEngine:
         self._ref_prev = prev_last
         self._ref_real = bool(new_t.shape[0]) and not bool(new_syn.any())
         if new_t.shape[0]:
-            utc = np.fromiter(map(self.timebase.to_utc, new_t.tolist()), np.float64,
-                              new_t.shape[0])
+            utc = utc_many(self.timebase, new_t)
             whole, rest = self._crossing_integrals(new_t)
             self._ref_new = (new_t, whole, rest)
             self._cx_t = np.concatenate([self._cx_t, new_t])
