@@ -460,13 +460,17 @@ class MeasurementEngine:
         shared = [ref is not None and t.shape == ref[0].shape and bool((t == ref[0]).all())
                   for t in news]
         counts = [0 if sh else t.shape[0] for t, sh in zip(news, shared, strict=True)]
-        if any(counts):
+        own = [c for c, n in enumerate(counts) if n]
+        parts: dict[int, tuple[I64, F64]] = {}
+        if len(own) == 1:           # the usual case: one channel off the shared chain
+            c = own[0]
+            parts[c] = self._crossing_integrals(news[c], np.full(counts[c], c, np.intp))
+        elif own:
             chan = np.repeat(np.arange(self.channels), counts)
-            whole, rest = self._crossing_integrals(np.concatenate(
-                [t for t, n in zip(news, counts, strict=True) if n]), chan)
+            whole, rest = self._crossing_integrals(np.concatenate([news[c] for c in own]), chan)
             cuts = np.cumsum(counts)[:-1]
-            parts = list(zip(np.split(whole, cuts, axis=1), np.split(rest, cuts, axis=1),
-                             strict=True))
+            parts = dict(enumerate(zip(np.split(whole, cuts, axis=1),
+                                       np.split(rest, cuts, axis=1), strict=True)))
         for c, t in enumerate(news):
             if not t.shape[0]:
                 continue
