@@ -14,7 +14,9 @@ whose response at 35 Hz is > 0.99 at 480 S/s. Every linear stage is a cascade of
 (analog prototype, bilinear transform) run in fixed chunks of the decimated signal as one
 state-space block product (``y = T x + O s``), so the recursion runs inside numpy's matrix
 product rather than a Python loop, scipy is not needed at the edge, and any block split of
-the input gives the same values (chunks are anchored to the sample index).
+the input gives the same values (chunks are anchored to the sample index). The two one-pole
+smoothers (input adaptor, block 4) keep only every 8th output, so they run as a recursion
+over those (:class:`DecimatedFirstOrder`).
 
 The gain k makes an 8.8 Hz sinusoidal fluctuation of ΔV/V = 0.25 % (peak to peak, 230 V
 lamp) give Pinst = 1 on average (from memory); the check against the standard's Table 5
