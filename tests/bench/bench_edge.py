@@ -3,7 +3,6 @@
     python tests/bench/bench_edge.py [--minutes 60] [--rate 7680] [--block 7680]
     python tests/bench/bench_edge.py --minutes 10 --against ../base --rounds 3
 
-
 Replays int16 counts (two channels, 7.68 kS/s, a split-phase 120 V / 60 Hz home with a few
 invented dips and swells) through the whole edge chain with every measurement on, on one
 core, and reports:
@@ -48,6 +47,7 @@ from agent.pipeline import Frame, edge_stages
 from agent.site import Site
 
 FLAT_MIB = 2.0          # RSS drift allowed after minute 5 for the "flat" verdict [MiB]
+FLOOR_X = 500.0         # issue 11's floor for the edge chain [x real time]
 
 
 def make_minute(rate: float, seed: int = 7) -> np.ndarray:
@@ -154,7 +154,8 @@ def main() -> None:
         return
     print(f"signal: {args.minutes} min, 2 ch, {args.rate:g} S/s, blocks of {args.block}")
     print(f"events {events}, captures {captures}")
-    print(f"pipeline CPU {pipeline_s:.2f} s -> {signal_s / pipeline_s:,.0f}x real time")
+    print(f"pipeline CPU {pipeline_s:.2f} s -> {signal_s / pipeline_s:,.0f}x real time "
+          f"({floor_word(signal_s / pipeline_s)})")
     print(f"bare numpy pass CPU {bare_s:.3f} s -> {signal_s / bare_s:,.0f}x real time")
     print(f"pipeline / bare cost ratio: {pipeline_s / bare_s:.1f}")
     print("per-stage CPU share:")
@@ -172,7 +173,11 @@ def main() -> None:
             + (f", traced {traced:+.1f} KiB" if args.trace_memory else "")
         )
     else:
-        print("memory: run at least 10 simulated minutes for the flat check")
+        print("memory: run at least 15 simulated minutes for the flat check")
+
+
+def floor_word(x: float) -> str:
+    return f"{'at or above' if x >= FLOOR_X else 'BELOW'} the {FLOOR_X:g}x floor"
 
 
 def compare(args: argparse.Namespace) -> None:
@@ -181,12 +186,17 @@ def compare(args: argparse.Namespace) -> None:
     trees = {"this": here, "against": os.path.abspath(args.against)}
     cmd = [sys.executable, os.path.abspath(__file__), "--json", "--minutes", str(args.minutes),
            "--rate", str(args.rate), "--block", str(args.block)]
+    if not os.path.isdir(os.path.join(trees["against"], "agent")):
+        raise SystemExit(f"bench_edge: --against {args.against}: no agent/ package there")
     runs: dict[str, list[dict]] = {k: [] for k in trees}
     for r in range(args.rounds):
         for name, tree in trees.items():
             env = dict(os.environ, PYTHONPATH=tree)
-            res = json.loads(subprocess.run(cmd, env=env, cwd=tree, check=True,
-                                            capture_output=True, text=True).stdout)
+            done = subprocess.run(cmd, env=env, cwd=tree, capture_output=True, text=True)
+            if done.returncode:
+                last = (done.stderr.strip().splitlines() or ["no output"])[-1]
+                raise SystemExit(f"bench_edge: the run in {tree} failed: {last}")
+            res = json.loads(done.stdout)
             runs[name].append(res)
             x = res["signal_s"] / res["pipeline_s"]
             print(f"round {r + 1} {name:<8} {x:7,.0f}x real time, "
@@ -195,12 +205,19 @@ def compare(args: argparse.Namespace) -> None:
     med = {k: statistics.median(v["pipeline_s"] for v in runs[k]) for k in runs}
     ratio = {k: statistics.median(v["pipeline_s"] / v["bare_s"] for v in runs[k]) for k in runs}
     sig = runs["this"][0]["signal_s"]
-    print(f"this tree    ({trees['this']}): median {sig / med['this']:,.0f}x real time, "
-          f"{ratio['this']:.1f}x a bare numpy pass")
+    print(f"this tree    ({trees['this']}): median {sig / med['this']:,.0f}x real time "
+          f"({floor_word(sig / med['this'])}), {ratio['this']:.1f}x a bare numpy pass")
     print(f"against tree ({trees['against']}): median {sig / med['against']:,.0f}x real time, "
           f"{ratio['against']:.1f}x a bare numpy pass")
     print(f"CPU this / against: {med['this'] / med['against']:.2f} (median of {args.rounds} "
           "alternating rounds)")
+    growth = [v["rss_growth_mib"] for v in runs["this"] if v["rss_growth_mib"] is not None]
+    if growth:
+        verdict = "flat" if max(abs(g) for g in growth) <= FLAT_MIB else "GROWING"
+        print(f"memory {verdict}, this tree: RSS change from minute 5 to the end "
+              f"{', '.join(f'{g:+.1f}' for g in growth)} MiB (flat: within {FLAT_MIB:g} MiB)")
+    else:
+        print("memory: run at least 15 simulated minutes for the flat check")
     print("per-stage CPU, this tree (median):")
     names = runs["this"][0]["per_stage"]
     for n in sorted(names, key=lambda k: -names[k]):
