@@ -180,3 +180,32 @@ def test_huge_step_at_first_sync_is_applied_at_once() -> None:
     assert model.to_utc(float(ends[-1])) - wall[-1] == pytest.approx(0.0, abs=1.5e-3)
     assert model.to_utc(float(ends[599])) - wall[599] == pytest.approx(0.0, abs=1.5e-3)
     assert model.unslewed_s(float(ends[-1])) == pytest.approx(0.0, abs=1e-9)
+
+
+def test_to_utc_many_gives_to_utc_values_exactly() -> None:
+    # The engine stamps a block's crossings with one vectorised call: it must give the very
+    # values of to_utc one by one (the same float operations), slewed and jumped steps included.
+    from agent.acquisition.timebase import ReplayTimebase, utc_many
+
+    clock = FakeClock()
+    clock.synced, clock.est_error_s = True, 0.001
+    model = ClockModel(NOMINAL, clock, slew_rate=0.01)
+    ends, wall = _arrivals(300.0, seed=3)
+    wall = wall + np.where(np.arange(ends.size) >= 1000, 2.0, 0.0)     # slewed step
+    wall = wall + np.where(np.arange(ends.size) >= 2000, 120.0, 0.0)   # jumped step
+    for i, w in zip(ends, wall, strict=True):
+        model.observe(int(i), float(w))
+    assert model.steps == 2
+    idx = np.linspace(0.0, float(ends[-1]), 5001) + 0.37
+    one_by_one = np.array([model.to_utc(float(i)) for i in idx])
+    assert np.array_equal(model.to_utc_many(idx), one_by_one)
+    assert np.array_equal(utc_many(model, idx), one_by_one)
+    replay = ReplayTimebase(NOMINAL, origin=1.7e9)
+    assert np.array_equal(utc_many(replay, idx), [replay.to_utc(float(i)) for i in idx])
+
+    class Shifted(ReplayTimebase):          # its own mapping: never the base's formula
+        def to_utc(self, index: float) -> float:
+            return 5.0 + index / self.rate
+
+    shifted = Shifted(NOMINAL)
+    assert np.array_equal(utc_many(shifted, idx), [shifted.to_utc(float(i)) for i in idx])

@@ -19,6 +19,7 @@ from agent.measurement.flicker import (
     CHUNK,
     LAMPS,
     BlockFilter,
+    DecimatedFirstOrder,
     FirstOrder,
     FlickerMeter,
     SubBlockFilter,
@@ -154,6 +155,29 @@ def test_block_state_space_equals_the_recursion_in_scipy() -> None:
     np.testing.assert_allclose(np.concatenate(got, axis=1), signal.lfilter(b1, a1, x, axis=1),
                                rtol=1e-9, atol=1e-12)
 
+
+
+@pytest.mark.parametrize("tau_s", [0.3, 60.0])
+def test_decimated_first_order_equals_the_recursion_in_scipy(tau_s: float) -> None:
+    # Independent oracle: scipy.signal.lfilter on the same first-order section, every 8th
+    # output, across chunks with the state carried; its chunk matrices P, Q are those of the
+    # block filter (the steady states use them).
+    b1, a1 = first_order_lowpass(tau_s, 480.0)
+    ss = cascade([(b1, a1)])
+    df = DecimatedFirstOrder.build(ss, CHUNK, 8)
+    x = np.random.default_rng(5).normal(size=(2, 5 * CHUNK)) + 2.0
+    state = np.zeros((1, 2))
+    got = []
+    for j in range(5):
+        y, state = df.run(x[:, j * CHUNK:(j + 1) * CHUNK], state)
+        got.append(y)
+    ref = signal.lfilter(b1, a1, x, axis=1)[:, ::8]
+    np.testing.assert_allclose(np.concatenate(got, axis=1), ref, rtol=1e-9, atol=1e-12)
+    bf = BlockFilter.build(ss, CHUNK, 8)
+    np.testing.assert_allclose(df.p, bf.p, rtol=1e-12)
+    np.testing.assert_allclose(df.q, bf.q, rtol=1e-12, atol=1e-300)
+    with pytest.raises(ValueError):
+        DecimatedFirstOrder.build(ss, CHUNK + 1, 8)
 
 def test_pst_and_plt_formulas() -> None:
     # Constant Pinst = c: every percentile is c, Pst = sqrt(c (0.0314 + 0.0525 + 0.0657 +

@@ -27,8 +27,9 @@ from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
+import numpy.typing as npt
 
-from agent.acquisition.timebase import TimeState
+from agent.acquisition.timebase import TimeState, utc_each
 
 __all__ = ["ClockModel", "KernelClock", "StepRecord", "SystemClock"]
 
@@ -291,6 +292,23 @@ class ClockModel:
         if self._t0 is None:
             raise RuntimeError("ClockModel.to_utc before any observation")
         return self._t0 + self._fit_at(index) + self._slew(index)
+
+    def to_utc_many(self, index: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+        """:meth:`to_utc` of every element of ``index`` (the same operations, so the same
+        values), for a batch of crossings at once."""
+        if type(self).to_utc is not ClockModel.to_utc:    # a subclass with its own mapping
+            return utc_each(self, index)
+        if self._t0 is None:
+            raise RuntimeError("ClockModel.to_utc before any observation")
+        fit = self._t_ref + (index - self._i_ref) * self._slope
+        total = np.zeros(index.shape)
+        for st in self.step_log:
+            if self.jump_above_s is not None and abs(st.size_s) > self.jump_above_s:
+                total += np.where(index >= st.index, st.size_s, 0.0)
+                continue
+            worked = np.maximum(0.0, (index - st.index) / self.nominal_rate * self.slew_rate)
+            total += np.copysign(np.minimum(abs(st.size_s), worked), st.size_s)
+        return np.asarray(self._t0 + fit + total, np.float64)
 
     def sample_rate(self) -> float:
         return 1.0 / self._slope

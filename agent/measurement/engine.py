@@ -22,7 +22,7 @@ import numpy as np
 import numpy.typing as npt
 
 from agent.acquisition.base import Block, SourceInfo
-from agent.acquisition.timebase import Timebase
+from agent.acquisition.timebase import Timebase, utc_many
 from agent.events.types import Thresholds
 from agent.measurement.aggregate import rms_aggregate
 from agent.measurement.conditioning import (
@@ -37,7 +37,7 @@ from agent.measurement.harmonics import (
     harmonic_ratios,
     max_harmonic_order,
     resample_points,
-    thd_from_subgroups,
+    thd_from_squares,
     window_subgroups,
 )
 from agent.measurement.imbalance import negative_sequence_ratio, split_phase_imbalance
@@ -407,8 +407,7 @@ class MeasurementEngine:
         self._ref_prev = prev_last
         self._ref_real = bool(new_t.shape[0]) and not bool(new_syn.any())
         if new_t.shape[0]:
-            utc = np.fromiter(map(self.timebase.to_utc, new_t.tolist()), np.float64,
-                              new_t.shape[0])
+            utc = utc_many(self.timebase, new_t)
             whole, rest = self._crossing_integrals(new_t)
             self._ref_new = (new_t, whole, rest)
             self._cx_t = np.concatenate([self._cx_t, new_t])
@@ -461,13 +460,17 @@ class MeasurementEngine:
         shared = [ref is not None and t.shape == ref[0].shape and bool((t == ref[0]).all())
                   for t in news]
         counts = [0 if sh else t.shape[0] for t, sh in zip(news, shared, strict=True)]
-        if any(counts):
+        own = [c for c, n in enumerate(counts) if n]
+        parts: dict[int, tuple[I64, F64]] = {}
+        if len(own) == 1:           # the usual case: one channel off the shared chain
+            c = own[0]
+            parts[c] = self._crossing_integrals(news[c], np.full(counts[c], c, np.intp))
+        elif own:
             chan = np.repeat(np.arange(self.channels), counts)
-            whole, rest = self._crossing_integrals(np.concatenate(
-                [t for t, n in zip(news, counts, strict=True) if n]), chan)
+            whole, rest = self._crossing_integrals(np.concatenate([news[c] for c in own]), chan)
             cuts = np.cumsum(counts)[:-1]
-            parts = list(zip(np.split(whole, cuts, axis=1), np.split(rest, cuts, axis=1),
-                             strict=True))
+            parts = dict(enumerate(zip(np.split(whole, cuts, axis=1),
+                                       np.split(rest, cuts, axis=1), strict=True)))
         for c, t in enumerate(news):
             if not t.shape[0]:
                 continue
@@ -489,11 +492,16 @@ class MeasurementEngine:
             t = self._oc_t[c]
             idx = np.searchsorted(t, ends, side="right") - 1
             j = idx - 2
-            ok = j >= 0
-            if ok.all() and (t[idx] == ends).all() and (t[j] == starts).all():
-                ok[:] = False                   # the shared windows already: same values
-            if ok.any():
+            rows: slice | BOOL | None = slice(None)   # the rows c's own windows replace
+            hi, lo = idx, j
+            if j[0] >= 0:                       # all rows (j ascends)
+                if (t[idx] == ends).all() and (t[j] == starts).all():
+                    rows = None                 # the shared windows already: same values
+            else:
+                ok = j >= 0
+                rows = ok if ok.any() else None
                 hi, lo = idx[ok], j[ok]
+            if rows is not None:
                 pc, rc = self._oc_p[c], self._oc_r[c]
                 d = (pc[:, hi] - pc[:, lo]).astype(np.float64)
                 d += rc[:, hi]
@@ -503,9 +511,9 @@ class MeasurementEngine:
                 msq = d[1] * (sc * sc) / span
                 mean = d[0] * sc / span
                 if dc is not None:
-                    urms[ok, c] = rms_without_dc(msq, mean, dc[ok, c])
+                    urms[rows, c] = rms_without_dc(msq, mean, dc[rows, c])
                 else:
-                    urms[ok, c] = np.sqrt(np.maximum(msq, 0.0))
+                    urms[rows, c] = np.sqrt(np.maximum(msq, 0.0))
             drop = int(idx[-1]) - 3
             if drop > 0:
                 self._oc_t[c] = t[drop:]
@@ -701,22 +709,27 @@ class MeasurementEngine:
                                          e[sl] - self._buf_start, cyc[sl],
                                          max(self._order, 1), self._points, self._frac)
             if self._order >= 2:                # else the sample rate allows no harmonic
-                thd[sl] = thd_from_subgroups(ysg).T
-                np.square(ysg, out=ysg2[:, sl])
+                sq2 = np.square(ysg, out=ysg2[:, sl])
+                thd[sl] = thd_from_squares(ysg[..., 0], sq2).T
             if self._imbalance == "u2":         # fundamental phasors, (m, 3)
                 imb[sl] = negative_sequence_ratio(fund.T)
         # Individual harmonics need the 5 Hz bins of a whole basic interval (IEC 61000-4-7):
         # the short interval before a 10-min tick or at the end of data is left out. Sums of
         # squared subgroups (orders 1..H) per 10-min period, the block's intervals at once.
         if ysg2.shape[-1]:
-            full = cyc == self._cycles
             p10_arr = self._cx_p10[i0s]
-            for per in (np.unique(p10_arr).tolist() if p10_arr[0] != p10_arr[-1]
-                        else [int(p10_arr[0])]):
-                rows = full & (p10_arr == per)
-                if rows.any():
-                    sq, n = self._h_sums.get(per, (0.0, 0))
-                    self._h_sums[per] = (ysg2[:, rows].sum(axis=1) + sq, int(rows.sum()) + n)
+            if p10_arr[0] == p10_arr[-1] and int(cyc.min()) == self._cycles:
+                per = int(p10_arr[0])       # the common case: whole intervals, one period
+                sq, n = self._h_sums.get(per, (0.0, 0))
+                self._h_sums[per] = (ysg2.sum(axis=1) + sq, cyc.shape[0] + n)
+            else:
+                full = cyc == self._cycles
+                for per in np.unique(p10_arr).tolist():
+                    rows = full & (p10_arr == per)
+                    if rows.any():
+                        sq, n = self._h_sums.get(per, (0.0, 0))
+                        self._h_sums[per] = (ysg2[:, rows].sum(axis=1) + sq,
+                                             int(rows.sum()) + n)
         if self._imbalance == "split":
             imb = split_phase_imbalance(rms[:, 0], rms[:, 1], self.site.nominal_v)
         hz = cyc * self.timebase.sample_rate() / (e - s)

@@ -52,8 +52,12 @@ def event_window_flags(urms: F64, dip_v: float, dip_end_v: float, swell_v: float
     IEC 61000-4-30 Ed.3 cl. 4.7 (flagging, from memory) and cl. 5.4 (dip and swell start and
     end with hysteresis; polyphase: starts on any channel, ends when all have recovered).
     """
-    if urms.shape[0] == 0:
+    n = urms.shape[0]
+    if n == 0:
         return np.zeros(0, dtype=bool), in_dip, in_swell
+    # No latch open and no row that could set one (most blocks): nothing is flagged.
+    if not in_dip and not in_swell and swell_v >= float(urms.max()) and float(urms.min()) >= dip_v:
+        return np.zeros(n, dtype=bool), False, False
     dip = latch(np.asarray((urms < dip_v).any(axis=1)),
                 np.asarray((urms >= dip_end_v).all(axis=1)), in_dip)
     swell = latch(np.asarray((urms > swell_v).any(axis=1)),
