@@ -1,0 +1,281 @@
+"""What one home's verdicts read of its per-second values: the store's 10-min rollups where
+they suffice, the seconds themselves only where a verdict needs them one by one.
+
+Most of a week's answers are sums and extremes over 10-min intervals (seconds measured and
+flagged, the highest value per day, 10-s frequency means against the EN 50160 bands, the
+imbalance RMS), which the collector keeps per interval at commit time
+(:func:`agent.store.trend.rollup`, :func:`agent.store.trend.unit_rollup`). Three answers need
+runs of single seconds: ANSI C84.1 excursions outside Range A longer than a minute, IEEE
+1547 sustained trips, seconds above the overvoltage level. A run of seconds beyond a limit
+lies wholly in intervals whose extremes pass that limit, so only those intervals are read
+and decoded (:func:`needs_seconds` picks them); the runs found are exactly the runs in all
+seconds. Intervals cut by the period's ends, and those whose 10-s frequency means were left
+open at commit time, are read too.
+
+:func:`from_seconds` builds the same :class:`Seconds` from every second (the way for a home
+without stored 10-min aggregates, or an averaging window other than 10 min), reducing them
+with the same rollup functions, so both ways give one answer (tests/test_report_rollups.py).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from agent.store.recorder import UNIT_COLUMNS, RecorderStore, unit_row_values
+from agent.store.trend import SPANS, TrendChunk, rollup, unit_rollup
+from agent.verdicts.series import day_key
+from agent.wire.records import FLAG_EVENT
+
+F64 = npt.NDArray[np.float64]
+Arrays = dict[str, np.ndarray]
+#: The rollup interval [s].
+SPAN_S = SPANS[0]
+#: Per-channel rollup columns the report reads.
+CHANNEL_COLUMNS = ("t_utc", "channel", "seconds", "flagged", "sum_v", "sum_sq_v2", "min_v",
+                   "max_v", "low_v", "peak_v")
+#: Share of a 10-min interval's seconds a mean needs (as
+#: :func:`agent.verdicts.series.window_means`; common practice).
+MIN_COVERAGE = 0.99
+
+
+@dataclass(frozen=True)
+class Seconds:
+    """One home's per-second values as the verdicts read them.
+
+    ``arrays``: per-second ``t``, ``mean``, ``peak``, ``low``, ``flagged``, ``hz``, ``thd``,
+    ``imbalance`` (time order) of every second (``complete``) or of the intervals that need
+    them; None when the home has no measured second in the period. ``channel``/``unit``:
+    column arrays of the 10-min rollups (per channel, per unit) over the whole period.
+    ``decoded``: seconds read one by one; ``errors``: stored rows that could not be read.
+    """
+
+    arrays: Arrays | None
+    complete: bool
+    channel: Arrays
+    unit: Arrays
+    decoded: int
+    errors: int = 0
+
+    @property
+    def seconds(self) -> int:
+        """Measured seconds in the period (any channel)."""
+        return int(self.unit["seconds"].sum())
+
+    @property
+    def flagged(self) -> int:
+        return int(self.unit["flagged"].sum())
+
+    @property
+    def channels(self) -> int:
+        ch = self.channel["channel"]
+        return int(ch.max()) + 1 if ch.size else 0
+
+    def max_per_day(self) -> dict[str, float]:
+        """Highest per-second mean or Urms(1/2) maximum [V] per UTC day, any channel."""
+        high = np.fmax(self.channel["max_v"], self.channel["peak_v"])
+        ok = np.isfinite(high)
+        out: dict[str, float] = {}
+        for t, v in zip(self.channel["t_utc"][ok], high[ok], strict=True):
+            key = day_key(float(t))
+            out[key] = max(out.get(key, -math.inf), float(v))
+        return out
+
+    def frequency(self, nominal_hz: float) -> dict[str, Any] | None:
+        """Additive counts of the 10-s frequency means for ``nominal_hz`` (50 or 60), as
+        :func:`agent.verdicts.supply.frequency_from_counts` takes them; None when the home
+        has no frequency value."""
+        u = self.unit
+        if not u["hz_n"].sum():
+            return None
+        tag = "50" if nominal_hz == 50.0 else "60"
+        made = u["f10_n"] > 0
+        return {"n": int(u["f10_n"].sum()), "inside": int(u[f"f10_in_{tag}"].sum()),
+                "outside_all": int(u[f"f10_out_{tag}"].sum()),
+                "t_first": float(u["f10_first"][made].min()) if made.any() else None,
+                "t_last": float(u["f10_last"][made].max()) if made.any() else None,
+                "min_hz": float(u["f10_min"][made].min()) if made.any() else None,
+                "max_hz": float(u["f10_max"][made].max()) if made.any() else None}
+
+    def imbalance_means(self) -> tuple[F64, F64] | None:
+        """10-min RMS means of the per-second imbalance (intervals with at least
+        :data:`MIN_COVERAGE` of their seconds); None when the home has no imbalance value."""
+        u = self.unit
+        if not u["imb_n"].sum():
+            return None
+        keep = u["imb_n"] >= MIN_COVERAGE * SPAN_S
+        return u["t_utc"][keep], np.sqrt(u["imb_sq"][keep] / u["imb_n"][keep])
+
+
+def _chunk(a: Arrays) -> TrendChunk:
+    """Per-second arrays back as a chunk for the rollup functions."""
+    n = a["t"].size
+    return TrendChunk(t=a["t"], rms_min=a["low"], rms_mean=a["mean"], rms_max=a["peak"],
+                      thd=a["thd"], hz=a["hz"], imbalance=a["imbalance"],
+                      flags=np.where(a["flagged"], FLAG_EVENT, 0).astype(np.int64),
+                      present=np.ones(n, bool))
+
+
+def _empty_columns(cols: Iterable[str]) -> Arrays:
+    return {c: np.empty(0) for c in cols}
+
+
+def reduce_seconds(a: Arrays | None) -> tuple[Arrays, Arrays]:
+    """The 10-min rollups (per channel, per unit) of per-second arrays holding every second
+    of their intervals, as column arrays (the same functions the collector runs at commit)."""
+    if a is None or not a["t"].size:
+        return _empty_columns(CHANNEL_COLUMNS), _empty_columns(("t_utc", *UNIT_COLUMNS))
+    chunk = _chunk(a)
+    rows = [(r.t_utc, r.channel, r.seconds, r.flagged, r.sum_v, r.sum_sq_v2,
+             np.nan if r.min_v is None else r.min_v, np.nan if r.max_v is None else r.max_v,
+             np.nan if r.low_v is None else r.low_v, np.nan if r.peak_v is None else r.peak_v)
+            for r in rollup(chunk, None)]
+    units = [(u.t_utc, *[np.nan if x is None else x for x in unit_row_values(u)])
+             for u in unit_rollup(chunk, final=True)]
+    ch = np.array(rows, dtype=np.float64).reshape(-1, len(CHANNEL_COLUMNS))
+    un = np.array(units, dtype=np.float64).reshape(-1, 1 + len(UNIT_COLUMNS))
+    return ({c: ch[:, i] for i, c in enumerate(CHANNEL_COLUMNS)},
+            {c: un[:, i] for i, c in enumerate(("t_utc", *UNIT_COLUMNS))})
+
+
+class _Collect:
+    """Decoded chunks of one home gathered into per-second arrays (time order)."""
+
+    FIELDS = ("t", "mean", "peak", "low", "flagged", "hz", "thd", "imbalance")
+
+    def __init__(self) -> None:
+        self.parts: dict[str, list[np.ndarray]] = {k: [] for k in self.FIELDS}
+        self.errors = 0
+
+    def add(self, c: TrendChunk) -> None:
+        self.errors += c.errors  # counted and shown; one bad row does not hide the rest
+        keep = c.present
+        for name, arr in (("t", c.t), ("mean", c.rms_mean), ("peak", c.rms_max),
+                          ("low", c.rms_min), ("flagged", (c.flags & FLAG_EVENT) != 0),
+                          ("hz", c.hz), ("thd", c.thd), ("imbalance", c.imbalance)):
+            self.parts[name].append(arr[keep])
+
+    def arrays(self, width: int = 0) -> Arrays | None:
+        if not sum(x.size for x in self.parts["t"]):
+            return None
+        width = max(width, *(x.shape[1] for x in self.parts["mean"]))
+        out = {}
+        for name, chunks in self.parts.items():
+            if chunks[0].ndim == 2:  # channel counts may differ between rows: pad with NaN
+                chunks = [np.pad(c, ((0, 0), (0, width - c.shape[1])),
+                                 constant_values=np.nan) for c in chunks]
+            out[name] = np.concatenate(chunks)
+        t = out["t"]
+        if t.size > 1 and not (t[1:] >= t[:-1]).all():
+            order = np.argsort(t, kind="stable")
+            out = {k: v[order] for k, v in out.items()}
+        return out
+
+
+def from_seconds(store: RecorderStore, device: str, start_utc: float | None,
+                 end_utc: float | None) -> Seconds:
+    """Every second of ``device`` in ``[start_utc, end_utc)``, and its rollups reduced
+    from them."""
+    got = _Collect()
+    for chunk in store.trend_seconds(device, start_utc, end_utc):
+        got.add(chunk)
+    return every_second(got.arrays(), got.errors)
+
+
+def every_second(arrays: Arrays | None, errors: int = 0) -> Seconds:
+    """:class:`Seconds` of per-second arrays that hold every second of the period (keys as
+    :attr:`Seconds.arrays`; ``peak``/``low`` default to ``mean``)."""
+    if arrays is not None:
+        arrays = {**arrays, "peak": arrays.get("peak", arrays["mean"]),
+                  "low": arrays.get("low", arrays["mean"])}
+    ch, un = reduce_seconds(arrays)
+    return Seconds(arrays, True, ch, un, 0 if arrays is None else int(arrays["t"].size),
+                   errors)
+
+
+#: Picks the intervals whose seconds a verdict needs one by one: (per-channel rollup
+#: columns) -> bool per channel row.
+Selector = Callable[[Arrays], np.ndarray]
+
+
+def limits_selector(low_v: float, high_v: float, peak_high_v: float) -> Selector:
+    """Intervals where a channel's per-second mean went below ``low_v`` or above ``high_v``
+    [V], or its highest Urms(1/2) above ``peak_high_v`` [V] (NaN extremes never pass)."""
+    def pick(c: Arrays) -> np.ndarray:
+        with np.errstate(invalid="ignore"):
+            return np.asarray((c["min_v"] < low_v) | (c["max_v"] > high_v)
+                              | (c["peak_v"] > peak_high_v))
+    return pick
+
+
+def _ranges(starts: np.ndarray) -> list[tuple[float, float]]:
+    """Sorted interval starts merged into ``[a, b)`` ranges of consecutive intervals."""
+    out: list[tuple[float, float]] = []
+    for t in np.unique(starts):
+        a = float(t)
+        if out and out[-1][1] == a:
+            out[-1] = (out[-1][0], a + SPAN_S)
+        else:
+            out.append((a, a + SPAN_S))
+    return out
+
+
+def from_rollups(store: RecorderStore, device: str, start_utc: float | None,
+                 end_utc: float | None, needs_seconds: Selector) -> Seconds:
+    """The home's rollups over ``[start_utc, end_utc)``, with the seconds of the intervals
+    ``needs_seconds`` picks (and of those cut by the period's ends or with open 10-s
+    frequency means) read, decoded and reduced again, exactly."""
+    first = None if start_utc is None else math.floor(start_utc / SPAN_S) * SPAN_S
+    ch, un = store.interval_rollups(device, first, end_utc)
+    read = set(ch["t_utc"][needs_seconds(ch)].tolist())
+    read |= set(un["t_utc"][un["f10_open"] > 0].tolist())
+    read |= set(ch["t_utc"].tolist()) - set(un["t_utc"].tolist())  # no unit row: read them
+    # Intervals cut by the period's ends: only their seconds inside the period count.
+    edges = {math.floor(e / SPAN_S) * SPAN_S for e in (start_utc, end_utc)
+             if e is not None and e % SPAN_S}
+    read |= edges
+    got = _Collect()
+    for a, b in _ranges(np.array(sorted(read))):
+        lo = a if start_utc is None else max(a, start_utc)
+        hi = b if end_utc is None else min(b, end_utc)
+        if lo < hi:
+            for chunk in store.trend_seconds(device, lo, hi):
+                got.add(chunk)
+    width = int(ch["channel"].max()) + 1 if ch["channel"].size else 0
+    arrays = got.arrays(width)
+    # The intervals read take their rollups from the seconds themselves; one read but with
+    # no stored second (trend not kept) keeps its stored rollups, unless the period cuts it.
+    rch, run = reduce_seconds(arrays)
+    done = np.union1d(run["t_utc"], np.array(sorted(edges), dtype=np.float64))
+    if done.size:
+        ch = _merge(ch, rch, done)
+        un = _merge(un, run, done)
+    if arrays is None and un["t_utc"].size and un["seconds"].sum() > 0:
+        arrays = _no_seconds(width)  # measured, but no second needed one by one
+    return Seconds(arrays, False, ch, un, 0 if arrays is None else int(arrays["t"].size),
+                   got.errors)
+
+
+def _merge(stored: Arrays, fresh: Arrays, done: np.ndarray) -> Arrays:
+    """Stored rollup rows outside ``done`` (interval starts) and the fresh rows, by time."""
+    keep = ~np.isin(stored["t_utc"], done)
+    out = {k: np.concatenate([stored[k][keep], fresh[k]]) for k in stored}
+    keys = (out["channel"], out["t_utc"]) if "channel" in out else (out["t_utc"],)
+    order = np.lexsort(keys)
+    return {k: v[order] for k, v in out.items()}
+
+
+def _no_seconds(width: int) -> Arrays:
+    w = max(width, 1)
+    return {"t": np.empty(0), "mean": np.empty((0, w)), "peak": np.empty((0, w)),
+            "low": np.empty((0, w)), "flagged": np.empty(0, bool), "hz": np.empty(0),
+            "thd": np.empty((0, w)), "imbalance": np.empty(0)}
+
+
+__all__ = ["Seconds", "Selector", "every_second", "from_rollups", "from_seconds",
+           "limits_selector", "reduce_seconds"]
