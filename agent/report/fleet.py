@@ -361,6 +361,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     now = time.time() if now is None else now
     if start_utc is not None and end_utc is not None and not start_utc < end_utc:
         raise ValueError(f"the period start {start_utc} is not before its end {end_utc}")
+    every_second = every_second or not store.has_unit_rollups()
     devices = store.devices()
     all_events = store.events(start_from=start_utc, start_before=end_utc)
     first_data = _first_data(store, devices) if end_utc is not None else {}

@@ -80,11 +80,11 @@ class Seconds:
         """Highest per-second mean or Urms(1/2) maximum [V] per UTC day, any channel."""
         high = np.fmax(self.channel["max_v"], self.channel["peak_v"])
         ok = np.isfinite(high)
-        out: dict[str, float] = {}
-        for t, v in zip(self.channel["t_utc"][ok], high[ok], strict=True):
-            key = day_key(float(t))
-            out[key] = max(out.get(key, -math.inf), float(v))
-        return out
+        day = np.floor(self.channel["t_utc"][ok] / 86400.0)
+        days, inv = np.unique(day, return_inverse=True)
+        top = np.full(days.size, -np.inf)
+        np.maximum.at(top, inv, high[ok])
+        return {day_key(float(d) * 86400.0): float(v) for d, v in zip(days, top, strict=True)}
 
     def frequency(self, nominal_hz: float) -> dict[str, Any] | None:
         """Additive counts of the 10-s frequency means for ``nominal_hz`` (50 or 60), as

@@ -743,6 +743,11 @@ class RecorderStore:
                 if rows:
                     db.executemany(upsert, rows)
 
+    def has_unit_rollups(self) -> bool:
+        """The store keeps the 10-min rollups the fleet report reads (schema 6 or later; an
+        older store not yet migrated by a collector is read second by second)."""
+        return self.db.schema_version() >= _UNIT_ROLLUP_VERSION
+
     @staticmethod
     def latest_schema_version() -> int:
         return _UNIT_ROLLUP_VERSION
