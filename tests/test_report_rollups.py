@@ -248,3 +248,39 @@ def test_same_report_however_batched_and_after_migration(store_url: str, tmp_pat
         assert {t: store.count(t) for t in counts} == counts
         assert store.count("trend_unit") > 0
     assert report(store_url, captures) == once
+
+
+def test_long_summaries_reaching_into_several_intervals(tmp_path: Path) -> None:
+    """Summaries of 1800 s (the edge allows up to 3600) each span three 10-min intervals:
+    two swells 20 min apart inside one summary are read once each, not twice."""
+    rng = np.random.default_rng(14)
+    t = T0 + np.arange(6 * 3600, dtype=float)
+    mean = 120.0 + rng.normal(0.0, 0.5, (t.size, 1))
+    mean[30:40, 0] = 133.0  # 1.108 pu, 10 s, in the first 10-min interval of a summary
+    mean[1500:1504, 0] = 133.0  # and in its third: two ranges, one stored row
+    home = {"device": "long-1", "channels": ["L1"], "t": t, "mean": mean, "peak": mean + 0.3,
+            "low": mean - 0.3, "hz": np.full(t.size, 60.0), "imbalance": np.full(t.size, np.nan),
+            "flags": np.zeros(t.size), "aggregates": True}
+    ident = codec.Identity(SITE, "long-1", "e1")
+    batcher = SummaryBatcher(["L1"], k=1800)
+    bodies = batcher.add_many(t, home["low"], mean, home["peak"], home["hz"],
+                              np.full(mean.shape, 0.02), home["imbalance"], home["flags"])
+    last = batcher.flush()
+    msgs = [codec.decode(codec.encode(ident.stamp(b, i + 1)))
+            for i, b in enumerate([*bodies, *([last] if last else [])])]
+    msgs += [m for m in messages(home) if m["type"] == "aggregate"]
+    for i, m in enumerate(msgs):
+        m["seq"] = i + 1
+    url = f"sqlite:///{tmp_path / 'long.db'}"
+    with RecorderStore(url, tmp_path / "captures") as store:
+        store.commit_batch([Item(message=m, received_at=NOW - 60.0) for m in msgs])
+        store.update_device_model("long-1", SITE, {"nominal_v": 120.0, "nominal_hz": 60.0})
+    fast = report(url, tmp_path / "captures")
+    full = report(url, tmp_path / "captures", every_second=True)
+    read = section(fast, "long-1")["trend_seconds_read"]
+    assert 0 < read <= 2 * 600  # the two intervals, each read once
+    assert without_read_counts(fast) == without_read_counts(full)
+    s = section(fast, "long-1")
+    # IEEE 1547-2018 category II OV1 1.10 pu / 2 s (pub): both swells, 10 s and 4 s.
+    assert [e["duration_s"] for e in s["inverter"]["sustained"]] == [10.0, 4.0]
+    assert s["overvoltage"]["seconds_above"] == 14

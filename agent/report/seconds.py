@@ -28,7 +28,7 @@ import numpy as np
 import numpy.typing as npt
 
 from agent.store.recorder import UNIT_COLUMNS, RecorderStore, unit_row_values
-from agent.store.trend import SPANS, TrendChunk, rollup, unit_rollup
+from agent.store.trend import ROLLUP_FIELDS, SPANS, TrendChunk, rollup, unit_rollup
 from agent.verdicts.series import day_key
 from agent.wire.records import FLAG_EVENT
 
@@ -167,8 +167,9 @@ class _Collect:
         out = {}
         for name, chunks in self.parts.items():
             if chunks[0].ndim == 2:  # channel counts may differ between rows: pad with NaN
-                chunks = [np.pad(c, ((0, 0), (0, width - c.shape[1])),
-                                 constant_values=np.nan) for c in chunks]
+                chunks = [c if c.shape[1] == width else np.pad(
+                    c, ((0, 0), (0, width - c.shape[1])), constant_values=np.nan)
+                    for c in chunks]
             out[name] = np.concatenate(chunks)
         t = out["t"]
         if t.size > 1 and not (t[1:] >= t[:-1]).all():
@@ -240,12 +241,15 @@ def from_rollups(store: RecorderStore, device: str, start_utc: float | None,
              if e is not None and e % SPAN_S}
     read |= edges
     got = _Collect()
+    ranges = []
     for a, b in _ranges(np.array(sorted(read))):
         lo = a if start_utc is None else max(a, start_utc)
         hi = b if end_utc is None else min(b, end_utc)
         if lo < hi:
-            for chunk in store.trend_seconds(device, lo, hi):
-                got.add(chunk)
+            ranges.append((lo, hi))
+    # THD is judged on the 10-min aggregates here: its per-second arrays stay packed.
+    for chunk in store.trend_in_ranges(device, ranges, fields=ROLLUP_FIELDS):
+        got.add(chunk)
     width = int(ch["channel"].max()) + 1 if ch["channel"].size else 0
     arrays = got.arrays(width)
     # The intervals read take their rollups from the seconds themselves; one read but with

@@ -1727,6 +1727,49 @@ class RecorderStore:
                 keep &= chunk.t < end_utc
             yield chunk if keep.all() else trend_codec.select(chunk, keep)
 
+    def trend_in_ranges(self, device: str, ranges: Sequence[tuple[float, float]], *,
+                        fields: frozenset[str] = trend_codec.ALL_FIELDS, rows_per_chunk: int = 1440
+                        ) -> Iterator[trend_codec.TrendChunk]:
+        """The stored seconds of one device inside any of ``ranges`` (``[a, b)`` [s UTC],
+        sorted, not overlapping), in time order: one indexed query per range, the rows of
+        several ranges decoded together (about ``rows_per_chunk`` summaries a chunk)."""
+        bodies: list[dict[str, Any] | None] = []
+        bounds: list[tuple[float, float]] = []
+
+        def flush() -> trend_codec.TrendChunk:
+            chunk = trend_codec.decode_rows(bodies, fields)
+            starts = np.array([a for a, _ in bounds])
+            ends = np.array([b for _, b in bounds])
+            k = np.searchsorted(starts, chunk.t, side="right") - 1
+            keep = (k >= 0) & (chunk.t < ends[np.maximum(k, 0)])
+            bodies.clear()
+            bounds.clear()
+            return chunk if keep.all() else trend_codec.select(chunk, keep)
+
+        seen: set[tuple[Any, ...]] = set()  # a long summary may reach into two ranges
+        for a, b in ranges:
+            rows = self.db.query(
+                "SELECT t_utc, epoch, seq, data FROM trend WHERE device = ? AND t_utc >= ?"
+                " AND t_utc + n > ? AND t_utc < ? ORDER BY t_utc, epoch, seq",
+                (device, a - MAX_SUMMARY_S, a, b))
+            for t_utc, epoch, seq, data in rows:
+                if t_utc < a:
+                    if (t_utc, epoch, seq) in seen:
+                        continue
+                    seen.add((t_utc, epoch, seq))
+                elif t_utc + MAX_SUMMARY_S > b:
+                    seen.add((t_utc, epoch, seq))
+                try:
+                    body = msgpack.unpackb(self.db.blob(data), raw=False, strict_map_key=False)
+                    bodies.append(body if isinstance(body, dict) else None)
+                except (ValueError, TypeError, msgpack.UnpackException):
+                    bodies.append(None)
+            bounds.append((a, b))
+            if len(bodies) >= rows_per_chunk:
+                yield flush()
+        if bodies:
+            yield flush()
+
     def interval_rollups(self, device: str, start_utc: float | None = None,
                          end_utc: float | None = None
                          ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
