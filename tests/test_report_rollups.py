@@ -46,7 +46,7 @@ NOW = T0 + 2 * DAY
 
 def solar_home() -> dict[str, Any]:
     """Invented split-phase home: starts 5 s past the hour, a 3-h midday rise to 126.5 V on
-    L2, a 5-s swell to 1.12 pu, half-cycle peaks above 1.10 pu while the means stay inside,
+    L2 (one second back inside at 12:30), a 5-s swell to 1.12 pu, half-cycle peaks above 1.10 pu while the means stay inside,
     37 s unmeasured, a 10-s frequency excursion to 60.8 Hz, flagged seconds."""
     rng = np.random.default_rng(11)
     t = T0 + 5.0 + np.arange(HOURS * 3600 - 5, dtype=float)
@@ -55,6 +55,7 @@ def solar_home() -> dict[str, Any]:
     hour = (t - T0) / 3600.0 % 24
     mean[(hour >= 11) & (hour < 14), 1] = 126.5 + rng.normal(0.0, 0.1, int(np.count_nonzero(
         (hour >= 11) & (hour < 14))))
+    mean[45_000 - 5, 1] = 125.0  # one second back inside Range A at 12:30 splits the rise
     mean[10_000:10_005, 0] = 134.4  # 1.12 pu for 5 s
     peak = mean + 0.6
     peak[50_000:50_003, 1] = 133.5  # Urms(1/2) above 1.10 pu, means inside
@@ -173,6 +174,9 @@ def test_rollups_give_the_every_second_answers(store_url: str, tmp_path: Path) -
     # The rollups point to the few intervals with something to count (common practice:
     # the point of rolling up); the home without aggregates is read whole.
     assert 0 < read < 0.25 * total
+    # The midday rise's whole intervals beyond Range A are not read second by second (they
+    # cannot end a run): only its first and last, and the one it dips back inside in.
+    assert section(fast, "solar-1")["trend_seconds_read"] < 3 * 3600
     assert section(fast, "old-1")["trend_seconds_read"] == section(fast, "old-1")["trend_seconds"]
     assert without_read_counts(fast) == without_read_counts(full)
 
@@ -199,7 +203,10 @@ def test_rollups_give_the_every_second_answers(store_url: str, tmp_path: Path) -
     # ANSI C84.1 Range A service 114-126 V (pub), Range B 110-127 V (from memory): the 3-h
     # midday rise is one excursion outside A, inside B (the 5-s swell, hours before, is too short).
     runs = s["compliance"]["excursions"]["longer_than_600s"]
-    assert [(r["side"], r["duration_s"]) for r in runs] == [("high", 3 * 3600.0)]
+    assert [(r["side"], r["duration_s"]) for r in runs] == [("high", 5400.0), ("high", 5399.0)]
+    first = (solar["t"] >= T0 + 11 * 3600) & (solar["t"] < T0 + 12.5 * 3600)
+    # (values travel in 0.01-V units: agent.wire.records.DEFAULT_EXPONENTS)
+    assert runs[0]["extreme_v"] == pytest.approx(float(solar["mean"][first, 1].max()), abs=0.006)
     assert s["compliance"]["verdict"] == "range_b"
     # EN 50160 frequency: 10-s means within +-1 % (pub); numpy's own 10-s means.
     slot = np.floor(solar["t"] / 10.0)

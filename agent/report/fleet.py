@@ -52,7 +52,7 @@ from agent.report.device import (
 from agent.report.fleet_text import category_tag, render_text
 from agent.report.now import TEN_MIN_FULL_COUNT, fleet_now, is_planned_stop
 from agent.report.power_quality import device_sections
-from agent.report.seconds import Seconds, Selector, from_rollups, from_seconds, limits_selector
+from agent.report.seconds import Limits, Seconds, from_rollups, from_seconds
 from agent.store.recorder import RecorderStore
 from agent.verdicts import INDICATIVE
 from agent.verdicts.interruptions import interruption_stats
@@ -102,20 +102,21 @@ def _nominal_hz(model: Mapping[str, Any], ten_min: TenMin,
     return None
 
 
-def _selector(nominal: Nominal, hz: float | None, point: str, category: str) -> Selector:
-    """The intervals whose seconds the excursion, trip and overvoltage counts need: a mean
-    beyond ANSI C84.1 Range A (every candidate nominal, for an inferred one), beyond an IEEE
-    1547 default setting, or a mean or Urms(1/2) maximum above the overvoltage level."""
+def _limits(nominal: Nominal, hz: float | None, point: str, category: str) -> Limits:
+    """The limits whose runs of single seconds the verdicts count: the IEEE 1547 default
+    settings and the overvoltage level (1.10 pu, means and Urms(1/2) maxima), and ANSI C84.1
+    Range A for its excursion lists (the band every candidate nominal gives, when inferred)."""
     n = nominal.volts
     lows = [pu * n for _, side, pu, _ in IEEE1547_DEFAULTS[category] if side == "under"]
     highs = [pu * n for _, side, pu, _ in IEEE1547_DEFAULTS[category] if side == "over"]
     highs.append(EN50549_TEN_MIN_PU * n)
+    band_low = band_high = None
     if standard_for(n, hz) == "ansi":
-        for volts in {n, *nominal.candidates}:
-            band = ansi_band(volts, "A", point)
-            lows.append(band.low_v)
-            highs.append(band.high_v)
-    return limits_selector(max(lows), min(highs), EN50549_TEN_MIN_PU * n)
+        bands = [ansi_band(volts, "A", point) for volts in {n, *nominal.candidates}]
+        band_low = max(b.low_v for b in bands)
+        band_high = min(b.high_v for b in bands)
+    return Limits(max(lows), min(highs), EN50549_TEN_MIN_PU * n, band_low, band_high,
+                  stand_ins=not (set(nominal.candidates) - {n}))
 
 
 def _event_row(ev: Mapping[str, Any]) -> dict[str, Any]:
@@ -173,8 +174,8 @@ def _read_home(store: RecorderStore, dev: Mapping[str, Any], events: list[dict[s
         hz = _nominal_hz(model, ten_min, None)
         nominal = pick_nominal(model, events, None, ten_min, hz, default_nominal_v)
         if nominal is not None:
-            pick = _selector(nominal, hz, _point(model), inverter_category)
-            return from_rollups(store, name, start_utc, end_utc, pick), hz, nominal
+            limits = _limits(nominal, hz, _point(model), inverter_category)
+            return from_rollups(store, name, start_utc, end_utc, limits), hz, nominal
     seconds = from_seconds(store, name, start_utc, end_utc)
     hz = _nominal_hz(model, ten_min, seconds.arrays)
     return seconds, hz, pick_nominal(model, events, seconds.arrays, ten_min, hz,

@@ -20,7 +20,7 @@ with the same rollup functions, so both ways give one answer (tests/test_report_
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -199,19 +199,57 @@ def every_second(arrays: Arrays | None, errors: int = 0) -> Seconds:
                    errors)
 
 
-#: Picks the intervals whose seconds a verdict needs one by one: (per-channel rollup
-#: columns) -> bool per channel row.
-Selector = Callable[[Arrays], np.ndarray]
+@dataclass(frozen=True)
+class Limits:
+    """The limits [V] whose runs of single seconds a home's verdicts count.
+
+    ``low_v``/``high_v``: the nearest of the trip settings and the overvoltage level (every
+    second beyond them is needed one by one); ``peak_high_v``: the Urms(1/2) maximum level;
+    ``band_low_v``/``band_high_v``: a band whose excursions are only listed as runs (ANSI
+    C84.1 Range A), or None; ``stand_ins``: whole intervals beyond that band may be stood in
+    for (False when the band is the narrowest of several candidate bands: a wider one
+    would need their seconds).
+    """
+
+    low_v: float
+    high_v: float
+    peak_high_v: float
+    band_low_v: float | None = None
+    band_high_v: float | None = None
+    stand_ins: bool = True
 
 
-def limits_selector(low_v: float, high_v: float, peak_high_v: float) -> Selector:
-    """Intervals where a channel's per-second mean went below ``low_v`` or above ``high_v``
-    [V], or its highest Urms(1/2) above ``peak_high_v`` [V] (NaN extremes never pass)."""
-    def pick(c: Arrays) -> np.ndarray:
-        with np.errstate(invalid="ignore"):
-            return np.asarray((c["min_v"] < low_v) | (c["max_v"] > high_v)
-                              | (c["peak_v"] > peak_high_v))
-    return pick
+def plan(c: Arrays, u: Arrays, limits: Limits) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which 10-min intervals to read one second at a time, from their rollups.
+
+    Returns (interval starts [s] to read, interval starts whose every second lies beyond
+    the band on one side and nowhere beyond the other limits, the value per channel [V] that
+    stands for them). Such an interval cannot end or break a run, nor count towards a trip or
+    the overvoltage level: its 600 seconds are stood in for by that value (the channel's
+    extreme on that side), which gives the same runs, extremes and sides as its seconds.
+    """
+    if not c["t_utc"].size:
+        return np.empty(0), np.empty(0), np.empty((0, 0))
+    starts, row = np.unique(c["t_utc"], return_inverse=True)
+    m = starts.size
+    width = int(c["channel"].max()) + 1
+    grid = {k: np.full((m, width), np.nan) for k in ("min_v", "max_v", "peak_v", "seconds")}
+    for k in grid:
+        grid[k][row, c["channel"].astype(np.int64)] = c[k]
+    lo, hi, pk, n = grid["min_v"], grid["max_v"], grid["peak_v"], grid["seconds"]
+    with np.errstate(invalid="ignore"):
+        other = ((lo < limits.low_v) | (hi > limits.high_v) | (pk > limits.peak_high_v)).any(1)
+        if limits.band_low_v is None or limits.band_high_v is None:
+            return starts[other], np.empty(0), np.empty((0, width))
+        a_lo, a_hi = limits.band_low_v, limits.band_high_v
+        band = ((lo < a_lo) | (hi > a_hi)).any(axis=1)
+        whole = n == SPAN_S
+        all_high = ((lo > a_hi) & whole).any(axis=1) & (lo >= a_lo).all(axis=1)
+        all_low = ((hi < a_lo) & whole).any(axis=1) & (hi <= a_hi).all(axis=1)
+    unit_whole = np.isin(starts, u["t_utc"][u["seconds"] == SPAN_S])
+    stand_in = band & ~other & (all_high | all_low) & unit_whole & limits.stand_ins
+    value = np.where(all_high[:, None], hi, lo)
+    return starts[(other | band) & ~stand_in], starts[stand_in], value[stand_in]
 
 
 def _ranges(starts: np.ndarray) -> list[tuple[float, float]]:
@@ -227,19 +265,22 @@ def _ranges(starts: np.ndarray) -> list[tuple[float, float]]:
 
 
 def from_rollups(store: RecorderStore, device: str, start_utc: float | None,
-                 end_utc: float | None, needs_seconds: Selector) -> Seconds:
+                 end_utc: float | None, limits: Limits) -> Seconds:
     """The home's rollups over ``[start_utc, end_utc)``, with the seconds of the intervals
-    ``needs_seconds`` picks (and of those cut by the period's ends or with open 10-s
-    frequency means) read, decoded and reduced again, exactly."""
+    :func:`plan` picks (and of those cut by the period's ends or with open 10-s frequency
+    means) read, decoded and reduced again, exactly."""
     first = None if start_utc is None else math.floor(start_utc / SPAN_S) * SPAN_S
     ch, un = store.interval_rollups(device, first, end_utc)
-    read = set(ch["t_utc"][needs_seconds(ch)].tolist())
+    picked, whole_t, whole_v = plan(ch, un, limits)
+    read = set(picked.tolist())
     read |= set(un["t_utc"][un["f10_open"] > 0].tolist())
     read |= set(ch["t_utc"].tolist()) - set(un["t_utc"].tolist())  # no unit row: read them
     # Intervals cut by the period's ends: only their seconds inside the period count.
     edges = {math.floor(e / SPAN_S) * SPAN_S for e in (start_utc, end_utc)
              if e is not None and e % SPAN_S}
     read |= edges
+    stand_in = ~np.isin(whole_t, np.array(sorted(read), dtype=np.float64))
+    whole_t, whole_v = whole_t[stand_in], whole_v[stand_in]
     got = _Collect()
     ranges = []
     for a, b in _ranges(np.array(sorted(read))):
@@ -259,10 +300,37 @@ def from_rollups(store: RecorderStore, device: str, start_utc: float | None,
     if done.size:
         ch = _merge(ch, rch, done)
         un = _merge(un, run, done)
+    decoded = 0 if arrays is None else int(arrays["t"].size)
+    if whole_t.size:
+        arrays = _with_stand_ins(arrays, whole_t, whole_v, width)
     if arrays is None and un["t_utc"].size and un["seconds"].sum() > 0:
         arrays = _no_seconds(width)  # measured, but no second needed one by one
-    return Seconds(arrays, False, ch, un, 0 if arrays is None else int(arrays["t"].size),
-                   got.errors)
+    return Seconds(arrays, False, ch, un, decoded, got.errors)
+
+
+def _with_stand_ins(arrays: Arrays | None, starts: np.ndarray, values: np.ndarray,
+                    width: int) -> Arrays:
+    """Per-second arrays with each whole interval of ``starts`` added as 600 seconds of its
+    stand-in ``values`` (per channel), in time order."""
+    w = max(width, values.shape[1])
+    t = (starts[:, None] + np.arange(SPAN_S, dtype=np.float64)).ravel()
+    v = np.repeat(values, SPAN_S, axis=0)
+    v = np.pad(v, ((0, 0), (0, w - v.shape[1])), constant_values=np.nan)
+    extra = {"t": t, "mean": v, "peak": v, "low": v, "flagged": np.zeros(t.size, bool),
+             "hz": np.full(t.size, np.nan), "thd": np.full(v.shape, np.nan),
+             "imbalance": np.full(t.size, np.nan)}
+    if arrays is None:
+        return extra
+    out = {}
+    for k, a in arrays.items():
+        b = extra[k]
+        if a.ndim == 2 and a.shape[1] != b.shape[1]:
+            wide = max(a.shape[1], b.shape[1])
+            a = np.pad(a, ((0, 0), (0, wide - a.shape[1])), constant_values=np.nan)
+            b = np.pad(b, ((0, 0), (0, wide - b.shape[1])), constant_values=np.nan)
+        out[k] = np.concatenate([a, b])
+    order = np.argsort(out["t"], kind="stable")
+    return {k: v[order] for k, v in out.items()}
 
 
 def _merge(stored: Arrays, fresh: Arrays, done: np.ndarray) -> Arrays:
@@ -281,5 +349,5 @@ def _no_seconds(width: int) -> Arrays:
             "thd": np.empty((0, w)), "imbalance": np.empty(0)}
 
 
-__all__ = ["Seconds", "Selector", "every_second", "from_rollups", "from_seconds",
-           "limits_selector", "reduce_seconds"]
+__all__ = ["Limits", "Seconds", "every_second", "from_rollups", "from_seconds", "plan",
+           "reduce_seconds"]
