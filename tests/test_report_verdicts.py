@@ -264,6 +264,7 @@ def test_now_out_of_range_apart_from_the_period(tmp_path: Path) -> None:
 
 def test_event_and_status_fields_read_defensively() -> None:
     from agent.report.device import EMPTY_TEN_MIN, dip_duration, supply_verdicts
+    from agent.report.seconds import every_second
 
     # Time below the dip threshold: the event row's field, else its payload's, else none.
     assert dip_duration({"dip_duration_s": 1.5, "payload": {"dip_duration_s": 9.0}}) == 1.5
@@ -276,5 +277,6 @@ def test_event_and_status_fields_read_defensively() -> None:
     trend = {"t": t, "mean": np.full((t.size, 1), 120.0), "hz": np.full(t.size, 60.0),
              "thd": np.full((t.size, 1), 0.02), "imbalance": np.full(t.size, np.nan),
              "flagged": np.zeros(t.size, bool)}
-    sup = supply_verdicts(trend, EMPTY_TEN_MIN, 60.0, "1ph", 1, thd_max_order=25)
+    sup = supply_verdicts(every_second(trend), EMPTY_TEN_MIN, 60.0, "1ph", 1,
+                          thd_max_order=25)
     assert "to order 25 (partial)" in sup["thd"]["rule"] and "unbalance" not in sup

@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from agent.report.seconds import Seconds
 from agent.verdicts.base import Verdict
 from agent.verdicts.inverter import inverter_trips, overvoltage_summary
 from agent.verdicts.limits import service_band, standard_for
@@ -21,8 +22,7 @@ from agent.verdicts.nominal import Nominal, guard_inferred, infer_nominal, servi
 from agent.verdicts.profile import voltage_profile
 from agent.verdicts.series import iso, window_means
 from agent.verdicts.supply import (
-    frequency_en50160,
-    ten_second_means,
+    frequency_from_counts,
     thd_en50160,
     unbalance_max_deviation,
     unbalance_u2,
@@ -42,6 +42,8 @@ class TenMin:
     thd: np.ndarray
     flagged: np.ndarray
     thd_max_order: int | None = None
+    hz: np.ndarray | None = None
+    """10-min mean frequencies [Hz] where the edge sent them (NaN where not)."""
 
     @property
     def size(self) -> int:
@@ -55,7 +57,8 @@ def pick_nominal(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
                  trend: Arrays | None, ten_min: TenMin, hz: float | None,
                  default_nominal_v: float | None) -> Nominal | None:
     """Declared (site model), from events, assumed (``--nominal``), else inferred among the
-    nominals of the detected frequency and service type (:mod:`agent.verdicts.nominal`)."""
+    nominals of the detected frequency and service type (:mod:`agent.verdicts.nominal`) from
+    the median of the stored 10-min means (of the per-second means without them)."""
     v = model.get("nominal_v")
     if isinstance(v, int | float) and not isinstance(v, bool) and v > 0:
         return Nominal(float(v), "declared")
@@ -65,7 +68,7 @@ def pick_nominal(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
             return Nominal(float(nv), "from events")
     if default_nominal_v:
         return Nominal(float(default_nominal_v), "assumed")
-    values = trend["mean"] if trend is not None else ten_min.rms
+    values = ten_min.rms if ten_min.size or trend is None else trend["mean"]
     if values.size and np.isfinite(values).any():
         med = float(np.nanmedian(values))
         if math.isfinite(med) and med > 0:
@@ -144,28 +147,31 @@ def summarise(c: Mapping[str, Any]) -> str:
             + (f"; failing weeks {', '.join(bad)}" if bad else "") + provisional + tail + ")")
 
 
-def supply_verdicts(trend: Arrays | None, ten_min: TenMin, hz: float | None, service: str,
-                    channels: int, thd_max_order: int | None = None) -> dict[str, Any]:
+def supply_verdicts(seconds: Seconds | None, ten_min: TenMin, hz: float | None,
+                    service: str, channels: int, thd_max_order: int | None = None
+                    ) -> dict[str, Any]:
     """Frequency, THD and unbalance where the home has the channels (else absent);
     ``thd_max_order`` the highest harmonic order the edge's THD covers, where known."""
     order = ten_min.thd_max_order if ten_min.thd_max_order is not None else thd_max_order
+    trend = None if seconds is None else seconds.arrays
     out: dict[str, Any] = {}
-    if trend is not None and hz and np.isfinite(trend["hz"]).any():
-        t10, f10 = ten_second_means(trend["t"], trend["hz"])
-        v = frequency_en50160(t10, f10, hz)
+    counts = None if seconds is None or not hz else seconds.frequency(hz)
+    if counts is not None and hz:
+        v = frequency_from_counts(counts, hz)
         notes = v.notes + (("EN 50160 rule shown for a 60-Hz supply (no ANSI C84.1 "
                             "counterpart)",) if hz == 60.0 else ())
         out["frequency"] = Verdict(v.rule, v.verdict, v.passed, v.confidence, v.basis,
                                    dict(v.details), notes).as_dict()
     if ten_min.size and np.isfinite(ten_min.thd).any():
         out["thd"] = thd_en50160(ten_min.t, ten_min.thd, max_order=order).as_dict()
-    elif trend is not None and np.isfinite(trend["thd"]).any():
+    elif trend is not None and seconds is not None and seconds.complete \
+            and np.isfinite(trend["thd"]).any():
         t, m, _ = window_means(trend["t"], trend["thd"], 600.0)
         if t.size:
             out["thd"] = thd_en50160(t, m, max_order=order).as_dict()
-    if channels >= 3 and service != "120/240" and trend is not None \
-            and np.isfinite(trend["imbalance"]).any():
-        t, m, _ = window_means(trend["t"], trend["imbalance"], 600.0)
+    imbalance = None if seconds is None else seconds.imbalance_means()
+    if channels >= 3 and service != "120/240" and imbalance is not None:
+        t, m = imbalance
         if t.size:
             out["unbalance"] = unbalance_u2(t, m).as_dict()
     elif channels == 2:
@@ -201,14 +207,30 @@ def event_inputs(events: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
     return out
 
 
+def channel_count(seconds: Seconds | None, ten_min: TenMin) -> int:
+    """Channels of a home: of its per-second values and stored 10-min aggregates."""
+    from_seconds = 0 if seconds is None else max(
+        seconds.channels, seconds.arrays["mean"].shape[1]
+        if seconds.complete and seconds.arrays is not None else 0)
+    return max(from_seconds, ten_min.rms.shape[1] if ten_min.size else 0)
+
+
 def device_verdicts(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]],
-                    trend: Arrays | None, ten_min: TenMin, *, nominal: Nominal | None,
+                    seconds: Seconds | None, ten_min: TenMin, *, nominal: Nominal | None,
                     hz: float | None, point: str, window_s: float = 600.0,
                     inverter_category: str = "II",
                     thd_max_order: int | None = None) -> dict[str, Any]:
-    """Every verdict of one home (plain JSON-ready dicts)."""
+    """Every verdict of one home (plain JSON-ready dicts).
+
+    ``seconds``: the home's per-second values (:mod:`agent.report.seconds`); when they are
+    not ``complete`` they hold the intervals the excursion, trip and overvoltage counts need,
+    and the stored 10-min aggregates give the window means (``window_s`` 600)."""
     if window_s not in ANSI_WINDOWS_S:
         raise ValueError(f"averaging window must be one of {ANSI_WINDOWS_S} s")
+    trend = None if seconds is None else seconds.arrays
+    if seconds is not None and not seconds.complete and (window_s != 600.0 or not ten_min.size):
+        raise ValueError("window means other than the stored 10-min aggregates need every "
+                         "second")
     out: dict[str, Any] = {"compliance": None, "overvoltage": None, "profile": None,
                            "inverter": None, "supply": {}, "standard": None}
     if nominal is None:
@@ -224,10 +246,11 @@ def device_verdicts(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]
         out["profile"] = voltage_profile(judged[0], judged[1], band,
                                          window_s=600.0 if standard != "ansi" else window_s,
                                          nominal_v=nominal.volts).as_dict()
-    if trend is not None:
+    if trend is not None and seconds is not None:
         ov = overvoltage_summary(trend["t"], trend["mean"], trend["peak"], nominal.volts,
-                                 ten_min_means_v=ten_min.rms.ravel() if ten_min.size else None)
-        ov["flagged_seconds"] = int(np.count_nonzero(trend["flagged"]))
+                                 ten_min_means_v=ten_min.rms.ravel() if ten_min.size else None,
+                                 max_per_day_v=seconds.max_per_day())
+        ov["flagged_seconds"] = seconds.flagged
         out["overvoltage"] = ov
     elif ten_min.size:
         out["overvoltage"] = overvoltage_summary(np.empty(0), np.empty((0, 1)), None,
@@ -240,12 +263,9 @@ def device_verdicts(model: Mapping[str, Any], events: Sequence[Mapping[str, Any]
             per_second=None if trend is None else (trend["t"], trend["mean"]),
             ten_min=(ten_min.t + 600.0, ten_min.rms) if ten_min.size else None,
             en50549=standard == "en50160").as_dict()
-    service = str(model.get("service_type") or service_for_channels(
-        trend["mean"].shape[1] if trend is not None else max(1, ten_min.rms.shape[1]
-                                                              if ten_min.size else 1)))
-    channels = trend["mean"].shape[1] if trend is not None else (
-        ten_min.rms.shape[1] if ten_min.size else 0)
-    out["supply"] = supply_verdicts(trend, ten_min, hz, service, channels, thd_max_order)
+    channels = channel_count(seconds, ten_min)
+    service = str(model.get("service_type") or service_for_channels(max(1, channels)))
+    out["supply"] = supply_verdicts(seconds, ten_min, hz, service, channels, thd_max_order)
     return out
 
 
@@ -290,5 +310,5 @@ def period_reasons(section: Mapping[str, Any]) -> list[str]:
     return reasons
 
 
-__all__ = ["EMPTY_TEN_MIN", "TenMin", "device_verdicts", "dip_duration", "iso",
+__all__ = ["EMPTY_TEN_MIN", "TenMin", "channel_count", "device_verdicts", "dip_duration", "iso",
            "period_reasons", "pick_nominal", "summarise"]

@@ -52,11 +52,13 @@ from agent.report.device import (
 from agent.report.fleet_text import category_tag, render_text
 from agent.report.now import TEN_MIN_FULL_COUNT, fleet_now, is_planned_stop
 from agent.report.power_quality import device_sections
+from agent.report.seconds import Limits, Seconds, from_rollups, from_seconds
 from agent.store.recorder import RecorderStore
-from agent.store.trend import TrendChunk
 from agent.verdicts import INDICATIVE
 from agent.verdicts.interruptions import interruption_stats
-from agent.wire.records import FLAG_EVENT
+from agent.verdicts.inverter import EN50549_TEN_MIN_PU, IEEE1547_DEFAULTS
+from agent.verdicts.limits import ansi_band, standard_for
+from agent.verdicts.nominal import Nominal
 
 REPORT_VERSION = 2
 #: SARFI thresholds reported [% of nominal] (IEEE 1564-2014 usual values).
@@ -85,45 +87,36 @@ def _iso(t: float | None) -> str | None:
         "+00:00", "Z")
 
 
-class _Trend:
-    """Per-second values of one device, from the store's decoded trend chunks."""
-
-    FIELDS = ("t", "mean", "peak", "low", "flagged", "hz", "thd", "imbalance")
-
-    def __init__(self) -> None:
-        self.parts: dict[str, list[np.ndarray]] = {k: [] for k in self.FIELDS}
-        self.errors = 0
-
-    def add(self, a: TrendChunk) -> None:
-        self.errors += a.errors  # counted and shown; one bad row does not hide the rest
-        keep = a.present
-        for name, arr in (("t", a.t), ("mean", a.rms_mean), ("peak", a.rms_max),
-                          ("low", a.rms_min), ("flagged", (a.flags & FLAG_EVENT) != 0),
-                          ("hz", a.hz), ("thd", a.thd), ("imbalance", a.imbalance)):
-            self.parts[name].append(arr[keep])
-
-    def arrays(self) -> dict[str, np.ndarray] | None:
-        if not sum(x.size for x in self.parts["t"]):
-            return None
-        width = max(x.shape[1] for x in self.parts["mean"])
-        out = {}
-        for name, chunks in self.parts.items():
-            if chunks[0].ndim == 2:  # channel counts may differ between rows: pad with NaN
-                chunks = [np.pad(c, ((0, 0), (0, width - c.shape[1])),
-                                 constant_values=np.nan) for c in chunks]
-            out[name] = np.concatenate(chunks)
-        order = np.argsort(out["t"], kind="stable")
-        return {k: v[order] for k, v in out.items()}
-
-
-def _nominal_hz(model: Mapping[str, Any], trend: dict[str, np.ndarray] | None) -> float | None:
+def _nominal_hz(model: Mapping[str, Any], ten_min: TenMin,
+                trend: dict[str, np.ndarray] | None) -> float | None:
+    """Declared, else the nearer of 50/60 Hz to the median of the stored 10-min mean
+    frequencies (of the per-second ones without them)."""
     hz = model.get("nominal_hz")
     if hz in (50, 60, 50.0, 60.0):
         return float(hz)
-    if trend is not None and np.isfinite(trend["hz"]).any():
-        med = float(np.nanmedian(trend["hz"]))
+    values = ten_min.hz if ten_min.hz is not None and np.isfinite(ten_min.hz).any() else (
+        trend["hz"] if trend is not None else None)
+    if values is not None and np.isfinite(values).any():
+        med = float(np.nanmedian(values))
         return 60.0 if abs(med - 60.0) < abs(med - 50.0) else 50.0
     return None
+
+
+def _limits(nominal: Nominal, hz: float | None, point: str, category: str) -> Limits:
+    """The limits whose runs of single seconds the verdicts count: the IEEE 1547 default
+    settings and the overvoltage level (1.10 pu, means and Urms(1/2) maxima), and ANSI C84.1
+    Range A for its excursion lists (the band every candidate nominal gives, when inferred)."""
+    n = nominal.volts
+    lows = [pu * n for _, side, pu, _ in IEEE1547_DEFAULTS[category] if side == "under"]
+    highs = [pu * n for _, side, pu, _ in IEEE1547_DEFAULTS[category] if side == "over"]
+    highs.append(EN50549_TEN_MIN_PU * n)
+    band_low = band_high = None
+    if standard_for(n, hz) == "ansi":
+        bands = [ansi_band(volts, "A", point) for volts in {n, *nominal.candidates}]
+        band_low = max(b.low_v for b in bands)
+        band_high = min(b.high_v for b in bands)
+    return Limits(max(lows), min(highs), EN50549_TEN_MIN_PU * n, band_low, band_high,
+                  stand_ins=not (set(nominal.candidates) - {n}))
 
 
 def _event_row(ev: Mapping[str, Any]) -> dict[str, Any]:
@@ -164,17 +157,37 @@ def _record(ev: Mapping[str, Any], model: Mapping[str, Any]) -> EventRecord | No
         return None
 
 
-def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
-                    trend: dict[str, np.ndarray] | None, ten_min: TenMin,
-                    trend_errors: int, now: float, default_nominal_v: float | None,
-                    planned_stop_after: float | None, window_s: float,
-                    inverter_category: str) -> dict[str, Any]:
-    model = dev.get("model") or {}
-    hz = _nominal_hz(model, trend)
-    nominal = pick_nominal(model, events, trend, ten_min, hz, default_nominal_v)
+def _point(model: Mapping[str, Any]) -> str:
     point = model.get("measurement_point") or "service"
-    if point not in ("service", "outlet"):
-        point = "service"
+    return point if point in ("service", "outlet") else "service"
+
+
+def _read_home(store: RecorderStore, dev: Mapping[str, Any], events: list[dict[str, Any]],
+               ten_min: TenMin, start_utc: float | None, end_utc: float | None,
+               default_nominal_v: float | None, window_s: float, inverter_category: str,
+               every_second: bool) -> tuple[Seconds, float | None, Nominal | None]:
+    """One home's per-second values (from the rollups and the seconds they point to, or
+    every second), its nominal frequency and nominal voltage."""
+    model = dev.get("model") or {}
+    name = dev["device"]
+    if not every_second and ten_min.size and window_s == 600.0:
+        hz = _nominal_hz(model, ten_min, None)
+        nominal = pick_nominal(model, events, None, ten_min, hz, default_nominal_v)
+        if nominal is not None:
+            limits = _limits(nominal, hz, _point(model), inverter_category)
+            return from_rollups(store, name, start_utc, end_utc, limits), hz, nominal
+    seconds = from_seconds(store, name, start_utc, end_utc)
+    hz = _nominal_hz(model, ten_min, seconds.arrays)
+    return seconds, hz, pick_nominal(model, events, seconds.arrays, ten_min, hz,
+                                     default_nominal_v)
+
+
+def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
+                    seconds: Seconds, hz: float | None, nominal: Nominal | None,
+                    ten_min: TenMin, now: float, planned_stop_after: float | None,
+                    window_s: float, inverter_category: str) -> dict[str, Any]:
+    model = dev.get("model") or {}
+    point = _point(model)
     by_kind: dict[str, int] = {}
     by_category: dict[str, int] = {}
     for ev in events:
@@ -191,7 +204,7 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
     partial = [ev for ev in events if (ev.get("payload") or {}).get("partial_outage")]
 
     order = (dev.get("status") or {}).get("thd_max_order")  # newer edges state it
-    verdicts = device_verdicts(model, events, trend, ten_min, nominal=nominal, hz=hz,
+    verdicts = device_verdicts(model, events, seconds, ten_min, nominal=nominal, hz=hz,
                                point=point, window_s=window_s,
                                inverter_category=inverter_category,
                                thd_max_order=order if isinstance(order, int)
@@ -236,8 +249,9 @@ def _device_section(dev: Mapping[str, Any], events: list[dict[str, Any]],
         "lost_power": bool(power_loss or interruptions),
         "power_loss_events": len(power_loss), "interruptions": len(interruptions),
         "partial_outages": len(partial),
-        "trend_seconds": 0 if trend is None else int(trend["t"].size),
-        "trend_rows_unreadable": trend_errors,
+        "trend_seconds": seconds.seconds,
+        "trend_seconds_read": seconds.decoded,
+        "trend_rows_unreadable": seconds.errors,
         "ten_min_aggregates": ten_min.size,
         "event_list": [_event_row(ev) for ev in events],
     }
@@ -263,7 +277,7 @@ def _ten_min(payloads: list[Any]) -> TenMin:
     """Complete stored 10-min aggregates. Flagged ones are kept and judged (the flag is for
     event statistics, IEC 61000-4-30, from memory); a partial interval (the agent started or
     stopped inside it) is no 10-min mean."""
-    rows: list[tuple[float, list[float], list[float], bool]] = []
+    rows: list[tuple[float, list[float], list[float], bool, float]] = []
     orders: set[int] = set()
     for p in payloads:
         if not isinstance(p, dict) or p.get("kind") != "10min" \
@@ -277,7 +291,9 @@ def _ten_min(payloads: list[Any]) -> TenMin:
         thd: list[Any] = thd_raw if isinstance(thd_raw, list) else []
         rows.append((float(t), [math.nan if x is None else float(x) for x in p["rms"]],
                      [math.nan if x is None else float(x) for x in thd],
-                     bool(p.get("flagged"))))
+                     bool(p.get("flagged")),
+                     float(p["hz"]) if isinstance(p.get("hz"), int | float)
+                     and not isinstance(p.get("hz"), bool) else math.nan))
         order = p.get("thd_max_order")  # newer edges state the THD's harmonic orders
         if isinstance(order, int) and not isinstance(order, bool):
             orders.add(order)
@@ -290,7 +306,7 @@ def _ten_min(payloads: list[Any]) -> TenMin:
 
     return TenMin(np.array([r[0] for r in rows]), np.array([pad(r[1]) for r in rows]),
                   np.array([pad(r[2][:width]) for r in rows]), np.array([r[3] for r in rows]),
-                  min(orders) if orders else None)
+                  min(orders) if orders else None, np.array([r[4] for r in rows]))
 
 
 def _interruption_windows(store: RecorderStore, all_events: list[dict[str, Any]],
@@ -315,7 +331,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
                  temporal_window_s: float = TEMPORAL_WINDOW_S,
                  planned_stop_after: float | None = None, start_utc: float | None = None,
                  end_utc: float | None = None, averaging_window_s: float = 600.0,
-                 inverter_category: str = "II") -> dict[str, Any]:
+                 inverter_category: str = "II", every_second: bool = False) -> dict[str, Any]:
     """The fleet report of everything in ``store`` (read-only).
 
     Parameters
@@ -333,6 +349,8 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         before the period is still listed (``monitored_in_period`` False, silent since ...)
     averaging_window_s : float  [s]  ANSI C84.1 averaging window (60, 300, 600 or 900)
     inverter_category : IEEE 1547-2018 category (I, II, III) for "would it have tripped"
+    every_second : read every stored second of every home instead of the 10-min rollups and
+        the seconds they point to (the same answers, slower; for checks)
 
     Returns
     -------
@@ -344,6 +362,7 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
     now = time.time() if now is None else now
     if start_utc is not None and end_utc is not None and not start_utc < end_utc:
         raise ValueError(f"the period start {start_utc} is not before its end {end_utc}")
+    every_second = every_second or not store.has_unit_rollups()
     devices = store.devices()
     all_events = store.events(start_from=start_utc, start_before=end_utc)
     first_data = _first_data(store, devices) if end_utc is not None else {}
@@ -361,17 +380,17 @@ def fleet_report(store: RecorderStore, *, now: float | None = None,
         name = dev["device"]
         if end_utc is not None and first_data.get(name, dev.get("first_seen") or 0.0) >= end_utc:
             continue  # not yet monitored in the period
-        # One home at a time: its seconds are decoded chunk by chunk and dropped once its
-        # section is made, so memory follows the largest home, not the fleet.
-        trend = _Trend()
-        for chunk in store.trend_arrays(name, start_utc, end_utc):
-            trend.add(chunk)
+        # One home at a time: its rollups, and the seconds they point to, are read and
+        # dropped once its section is made, so memory follows the largest home.
         events = by_device.get(name, [])
         aggregates = store.ten_min_aggregates(name, start_utc, end_utc)
+        ten_min = _ten_min(aggregates)
+        seconds, hz, nominal = _read_home(store, dev, events, ten_min, start_utc, end_utc,
+                                          default_nominal_v, averaging_window_s,
+                                          inverter_category, every_second)
         section = _device_section(
-            dev, events, trend.arrays(), _ten_min(aggregates),
-            trend.errors, now, default_nominal_v, planned_stop_after, averaging_window_s,
-            inverter_category)
+            dev, events, seconds, hz, nominal, ten_min, now, planned_stop_after,
+            averaging_window_s, inverter_category)
         # Harmonics and flicker verdicts per channel (agent.report.power_quality).
         section.update(device_sections([p for p in aggregates if isinstance(p, dict)]))
         # Heard from at or after the period's start: monitored in it. A unit silent since

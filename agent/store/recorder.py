@@ -45,6 +45,7 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 import msgpack
+import numpy as np
 
 from agent.events.types import Capture, dip_duration_of
 from agent.store import alerts as _alerts
@@ -307,6 +308,38 @@ CREATE TABLE IF NOT EXISTS trend_rollup (
 CREATE INDEX IF NOT EXISTS trend_rollup_t ON trend_rollup (span_s, t_utc)
 """
 _ROLLUP_COUNTS = ("below_085", "below_090", "below_095", "above_105", "above_110")
+#: The schema version that added the per-unit rollups (seconds, flagged seconds, 10-s
+#: frequency means, imbalance) the fleet report reads instead of every second.
+_UNIT_ROLLUP_VERSION = 6
+_UNIT_ROLLUP_V6 = """
+CREATE TABLE IF NOT EXISTS trend_unit (
+    device TEXT NOT NULL,
+    t_utc {double} NOT NULL,
+    seconds {bigint} NOT NULL,
+    flagged {bigint} NOT NULL,
+    hz_n {bigint} NOT NULL,
+    f10_n {bigint} NOT NULL,
+    f10_in_50 {bigint} NOT NULL,
+    f10_in_60 {bigint} NOT NULL,
+    f10_out_50 {bigint} NOT NULL,
+    f10_out_60 {bigint} NOT NULL,
+    f10_min {double},
+    f10_max {double},
+    f10_first {double},
+    f10_last {double},
+    f10_open {bigint} NOT NULL,
+    imb_n {bigint} NOT NULL,
+    imb_sq {double} NOT NULL,
+    PRIMARY KEY (device, t_utc)
+)
+"""
+#: Columns of ``trend_unit`` after its key, in :class:`agent.store.trend.UnitRollupRow` order.
+UNIT_COLUMNS = ("seconds", "flagged", "hz_n", "f10_n", "f10_in_50", "f10_in_60", "f10_out_50",
+                "f10_out_60", "f10_min", "f10_max", "f10_first", "f10_last", "f10_open",
+                "imb_n", "imb_sq")
+#: Longest summary the edge sends [s] (K <= 3600 one-second records): a stored trend row
+#: starting this long before an interval may still hold seconds of it.
+MAX_SUMMARY_S = 3600.0
 #: One PostgreSQL trend partition per UTC week [s].
 TREND_PARTITION_S = 7 * 86400
 # Advisory lock serialising partition creation among collectors (arbitrary key, "hcTP").
@@ -489,6 +522,26 @@ def _rollup_upsert(dialect: str) -> str:
             f" DO UPDATE SET {', '.join(sets)}")
 
 
+def _unit_upsert(dialect: str) -> str:
+    """Upsert of one unit rollup row: counts and sums add, extremes keep the extreme."""
+    least, greatest = ("LEAST", "GREATEST") if dialect == "postgresql" else ("MIN", "MAX")
+    cols = ("device", "t_utc", *UNIT_COLUMNS)
+    sets = [f"{c} = r.{c} + excluded.{c}" for c in UNIT_COLUMNS
+            if c not in ("f10_min", "f10_max", "f10_first", "f10_last")]
+    sets += [f"{c} = {fn}(COALESCE(r.{c}, excluded.{c}), COALESCE(excluded.{c}, r.{c}))"
+             for c, fn in (("f10_min", least), ("f10_max", greatest), ("f10_first", least),
+                           ("f10_last", greatest))]
+    return (f"INSERT INTO trend_unit AS r ({', '.join(cols)}) VALUES"
+            f" ({', '.join('?' * len(cols))}) ON CONFLICT (device, t_utc)"
+            f" DO UPDATE SET {', '.join(sets)}")
+
+
+def unit_row_values(r: trend_codec.UnitRollupRow) -> tuple[Any, ...]:
+    """A unit rollup row as the values of :data:`UNIT_COLUMNS`."""
+    return (r.seconds, r.flagged, r.hz_n, r.f10_n, *r.f10_in, *r.f10_out, r.f10_min, r.f10_max,
+            r.f10_first, r.f10_last, r.f10_open, r.imb_n, r.imb_sq)
+
+
 def _device_nominal(db: Database, device: str) -> float | None:
     row = db.query_one("SELECT model FROM devices WHERE device = ?", (device,))
     model = from_json(row[0]) if row else None
@@ -497,22 +550,29 @@ def _device_nominal(db: Database, device: str) -> float | None:
         else None
 
 
-def _write_rollups(db: Database, summaries: Sequence[tuple[str, Mapping[str, Any]]]) -> None:
+def _write_rollups(db: Database, summaries: Sequence[tuple[str, Mapping[str, Any]]],
+                   *, units_table: bool = True) -> None:
     """Add the seconds of newly committed summaries to their units' rollups (one decode and
-    one reduction per unit and batch)."""
+    one reduction per unit and batch); ``units_table`` False for a schema before version 6."""
     by_device: dict[str, list[Mapping[str, Any]]] = {}
     for device, msg in summaries:
         by_device.setdefault(device, []).append(msg)
     rows: list[tuple[Any, ...]] = []
+    units: list[tuple[Any, ...]] = []
     for device in sorted(by_device):
-        chunk = trend_codec.decode_rows(by_device[device], trend_codec.VOLTAGE_FIELDS)
+        chunk = trend_codec.decode_rows(by_device[device], trend_codec.ROLLUP_FIELDS)
         nominal = _device_nominal(db, device)
         for r in trend_codec.rollup(chunk, nominal):
             counts = (*(r.below or (None,) * 3), *(r.above or (None,) * 2))
             rows.append((device, r.span_s, r.t_utc, r.channel, r.seconds, r.flagged, r.sum_v,
                          r.sum_sq_v2, r.min_v, r.max_v, r.low_v, r.peak_v, r.nominal_v,
                          *counts))
+        if units_table:
+            units.extend((device, u.t_utc, *unit_row_values(u))
+                         for u in trend_codec.unit_rollup(chunk))
     db.executemany(_rollup_upsert(db.dialect), rows)
+    if units:
+        db.executemany(_unit_upsert(db.dialect), units)
 
 
 class _Pending:
@@ -620,7 +680,8 @@ class RecorderStore:
 
     def _migrations(self) -> list[tuple[int, str | Callable[[Database], None]]]:
         return [*_MIGRATIONS, (_PACKED_TREND_VERSION, self._migrate_packed_trend),
-                (_ROLLUP_VERSION, self._migrate_rollups), (_ALERTS_VERSION, _alerts.MIGRATION)]
+                (_ROLLUP_VERSION, self._migrate_rollups), (_ALERTS_VERSION, _alerts.MIGRATION),
+                (_UNIT_ROLLUP_VERSION, self._migrate_unit_rollups)]
 
     def _migrate_packed_trend(self, db: Database) -> None:
         """Version 3: the JSON trend table becomes ``trend_json``, the packed table takes its
@@ -665,11 +726,31 @@ class RecorderStore:
                 db.execute(statement)
         for (device,) in db.query("SELECT DISTINCT device FROM trend ORDER BY device"):
             for bodies in self._trend_bodies(db, device, None, None, 1440):
-                _write_rollups(db, [(device, b) for b in bodies if b is not None])
+                _write_rollups(db, [(device, b) for b in bodies if b is not None],
+                               units_table=False)
+
+    def _migrate_unit_rollups(self, db: Database) -> None:
+        """Version 6: the per-unit rollup table, filled from the trend rows already stored
+        (read page by page; the trend rows themselves are not touched)."""
+        db.execute(_UNIT_ROLLUP_V6)
+        upsert = _unit_upsert(db.dialect)
+        for (device,) in db.query("SELECT DISTINCT device FROM trend ORDER BY device"):
+            for bodies in self._trend_bodies(db, device, None, None, 1440):
+                chunk = trend_codec.decode_rows([b for b in bodies if b is not None],
+                                                trend_codec.ROLLUP_FIELDS)
+                rows = [(device, u.t_utc, *unit_row_values(u))
+                        for u in trend_codec.unit_rollup(chunk)]
+                if rows:
+                    db.executemany(upsert, rows)
+
+    def has_unit_rollups(self) -> bool:
+        """The store keeps the 10-min rollups the fleet report reads (schema 6 or later; an
+        older store not yet migrated by a collector is read second by second)."""
+        return self.db.schema_version() >= _UNIT_ROLLUP_VERSION
 
     @staticmethod
     def latest_schema_version() -> int:
-        return _ALERTS_VERSION
+        return _UNIT_ROLLUP_VERSION
 
     @classmethod
     def open_existing(cls, url: str, captures_dir: str | Path) -> RecorderStore:
@@ -1579,15 +1660,21 @@ class RecorderStore:
                                                    int(r[2]))} for r in rows]
 
     def _trend_bodies(self, db: Database, device: str, start_utc: float | None,
-                      end_utc: float | None, page: int
+                      end_utc: float | None, page: int, *, overlapping: bool = False
                       ) -> Iterator[list[dict[str, Any] | None]]:
         """Stored summary bodies of one device in time order, ``page`` rows at a time (keyset
-        paging on the primary key; None for a row that does not unpack)."""
+        paging on the primary key; None for a row that does not unpack). ``overlapping``:
+        also the rows that start before ``start_utc`` but may hold seconds after it."""
         last: tuple[Any, ...] | None = None
         while True:
             sql = "SELECT t_utc, epoch, seq, data FROM trend WHERE device = ?"
             params: list[Any] = [device]
-            if start_utc is not None:
+            if start_utc is not None and overlapping:
+                # n seconds of at least 1 s each: a row reaching past the start has
+                # t_utc + n > start (the index bounds the scan to one summary's length).
+                sql += " AND t_utc >= ? AND t_utc + n > ?"
+                params.extend((start_utc - MAX_SUMMARY_S, start_utc))
+            elif start_utc is not None:
                 sql += " AND t_utc >= ?"
                 params.append(start_utc)
             if end_utc is not None:
@@ -1623,6 +1710,93 @@ class RecorderStore:
         :data:`agent.store.trend.VOLTAGE_FIELDS`) leaves the others NaN, undecoded."""
         for bodies in self._trend_bodies(self.db, device, start_utc, end_utc, page):
             yield trend_codec.decode_rows(bodies, fields)
+
+    def trend_seconds(self, device: str, start_utc: float | None = None,
+                      end_utc: float | None = None, *, page: int = 1440
+                      ) -> Iterator[trend_codec.TrendChunk]:
+        """Like :meth:`trend_arrays`, but by the seconds themselves: every stored second of
+        one device in ``[start_utc, end_utc)`` [s UTC] (a summary that starts before the
+        start contributes its later seconds), chunk by chunk in time order."""
+        for bodies in self._trend_bodies(self.db, device, start_utc, end_utc, page,
+                                         overlapping=True):
+            chunk = trend_codec.decode_rows(bodies)
+            keep = np.ones(chunk.size, bool)
+            if start_utc is not None:
+                keep &= chunk.t >= start_utc
+            if end_utc is not None:
+                keep &= chunk.t < end_utc
+            yield chunk if keep.all() else trend_codec.select(chunk, keep)
+
+    def trend_in_ranges(self, device: str, ranges: Sequence[tuple[float, float]], *,
+                        fields: frozenset[str] = trend_codec.ALL_FIELDS, rows_per_chunk: int = 1440
+                        ) -> Iterator[trend_codec.TrendChunk]:
+        """The stored seconds of one device inside any of ``ranges`` (``[a, b)`` [s UTC],
+        sorted, not overlapping), in time order: one indexed query per range, the rows of
+        several ranges decoded together (about ``rows_per_chunk`` summaries a chunk)."""
+        bodies: list[dict[str, Any] | None] = []
+        bounds: list[tuple[float, float]] = []
+
+        def flush() -> trend_codec.TrendChunk:
+            chunk = trend_codec.decode_rows(bodies, fields)
+            starts = np.array([a for a, _ in bounds])
+            ends = np.array([b for _, b in bounds])
+            k = np.searchsorted(starts, chunk.t, side="right") - 1
+            keep = (k >= 0) & (chunk.t < ends[np.maximum(k, 0)])
+            bodies.clear()
+            bounds.clear()
+            return chunk if keep.all() else trend_codec.select(chunk, keep)
+
+        seen: set[tuple[Any, ...]] = set()  # a long summary may reach into two ranges
+        for a, b in ranges:
+            rows = self.db.query(
+                "SELECT t_utc, epoch, seq, data FROM trend WHERE device = ? AND t_utc >= ?"
+                " AND t_utc + n > ? AND t_utc < ? ORDER BY t_utc, epoch, seq",
+                (device, a - MAX_SUMMARY_S, a, b))
+            for t_utc, epoch, seq, data in rows:
+                if t_utc < a:
+                    if (t_utc, epoch, seq) in seen:
+                        continue
+                    seen.add((t_utc, epoch, seq))
+                elif t_utc + MAX_SUMMARY_S > b:
+                    seen.add((t_utc, epoch, seq))
+                try:
+                    body = msgpack.unpackb(self.db.blob(data), raw=False, strict_map_key=False)
+                    bodies.append(body if isinstance(body, dict) else None)
+                except (ValueError, TypeError, msgpack.UnpackException):
+                    bodies.append(None)
+            bounds.append((a, b))
+            if len(bodies) >= rows_per_chunk:
+                yield flush()
+        if bodies:
+            yield flush()
+
+    def interval_rollups(self, device: str, start_utc: float | None = None,
+                         end_utc: float | None = None
+                         ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+        """One device's 10-min rollups with interval start in ``[start_utc, end_utc)`` as
+        column arrays (NULL as NaN), ordered by time: per channel (``t_utc``, ``channel``,
+        ``seconds``, ``flagged``, ``sum_v``, ``sum_sq_v2``, ``min_v``, ``max_v``, ``low_v``,
+        ``peak_v``) and per unit (``t_utc`` and :data:`UNIT_COLUMNS`)."""
+        conds = "device = ?"
+        params: list[Any] = [device]
+        if start_utc is not None:
+            conds += " AND t_utc >= ?"
+            params.append(start_utc)
+        if end_utc is not None:
+            conds += " AND t_utc < ?"
+            params.append(end_utc)
+        ccols = ("t_utc", "channel", "seconds", "flagged", "sum_v", "sum_sq_v2", "min_v",
+                 "max_v", "low_v", "peak_v")
+        ucols = ("t_utc", *UNIT_COLUMNS)
+        out = []
+        for cols, sql in ((ccols, f"SELECT {', '.join(ccols)} FROM trend_rollup WHERE "
+                           f"span_s = {trend_codec.SPANS[0]} AND {conds} ORDER BY t_utc, channel"),
+                          (ucols, f"SELECT {', '.join(ucols)} FROM trend_unit WHERE {conds}"
+                           " ORDER BY t_utc")):
+            rows = self.db.query(sql, tuple(params))
+            table = np.array(rows, dtype=np.float64) if rows else np.empty((0, len(cols)))
+            out.append({c: table[:, i] for i, c in enumerate(cols)})
+        return out[0], out[1]
 
     def ten_min_aggregates(self, device: str, start_utc: float | None = None,
                            end_utc: float | None = None) -> list[Any]:
@@ -1747,8 +1921,8 @@ class RecorderStore:
         return int(row[0]) if row else 0
 
 
-_TABLES = ("devices", "streams", "received", "aggregates", "trend", "trend_rollup", "events",
-           "captures", "capture_chunks", "gaps", "dead_letters", "export_queue",
+_TABLES = ("devices", "streams", "received", "aggregates", "trend", "trend_rollup", "trend_unit",
+           "events", "captures", "capture_chunks", "gaps", "dead_letters", "export_queue",
            "outage_windows", "alert_state", "alert_queue", "alert_log", "schema_version")
 
 __all__ = ["BadMessage", "CommitInfo", "ExportRow", "Item", "RecorderStore", "StoreError",

@@ -26,6 +26,7 @@ import msgpack
 import numpy as np
 import numpy.typing as npt
 
+from agent.verdicts.supply import FREQ_ALL, FREQ_BAND
 from agent.wire.packing import MAX_WIDTH, _gather_bits
 from agent.wire.records import FLAG_EVENT
 
@@ -173,6 +174,8 @@ def _decode_group(bodies: Sequence[Mapping[str, Any]], n: int, nch: int,
 ALL_FIELDS = frozenset((*_PER_CHANNEL, *_SINGLE))
 #: What the voltage figures need (RMS and flags): thd, hz and imbalance stay packed.
 VOLTAGE_FIELDS = frozenset(("rms_min", "rms_mean", "rms_max", "flags"))
+#: What the commit-time rollups read: the voltage figures, frequency and imbalance.
+ROLLUP_FIELDS = VOLTAGE_FIELDS | {"hz", "imbalance"}
 
 
 def decode_rows(bodies: Iterable[Mapping[str, Any] | None],
@@ -249,6 +252,14 @@ def _assemble(parts: list[tuple[int, dict[str, Any]]], nch: int, errors: int) ->
         rms_max=cat("rms_max", nch), thd=cat("thd", nch), hz=cat("hz", None),
         imbalance=cat("imbalance", None),
         flags=np.where(present, flags_f, 0).astype(np.int64), present=present, errors=errors)
+
+
+def select(chunk: TrendChunk, keep: BOOL) -> TrendChunk:
+    """The seconds of ``chunk`` where ``keep`` (a boolean mask over its seconds)."""
+    return TrendChunk(t=chunk.t[keep], rms_min=chunk.rms_min[keep],
+                      rms_mean=chunk.rms_mean[keep], rms_max=chunk.rms_max[keep],
+                      thd=chunk.thd[keep], hz=chunk.hz[keep], imbalance=chunk.imbalance[keep],
+                      flags=chunk.flags[keep], present=chunk.present[keep], errors=chunk.errors)
 
 
 # --- rollups ----------------------------------------------------------------------------------
@@ -336,6 +347,112 @@ def rollup(chunk: TrendChunk, nominal_v: float | None,
     return out
 
 
+#: Nominal frequencies whose EN 50160 band counts a unit rollup keeps [Hz].
+NOMINAL_HZ = (50.0, 60.0)
+#: A 10-s frequency mean needs this many of its ten seconds (as
+#: :func:`agent.verdicts.supply.ten_second_means`).
+TEN_S_MIN_VALUES = 9
+
+
+@dataclass(frozen=True)
+class UnitRollupRow:
+    """What one unit's seconds in one 10-min interval give, channel by channel apart.
+
+    ``t_utc`` [s UTC] interval start; ``seconds``: measured seconds (any channel);
+    ``flagged``: of those, flagged by an RMS event; ``hz_n``: seconds with a frequency;
+    ``f10_n``: clock-aligned 10-s frequency means formed (at least nine of ten seconds);
+    ``f10_in`` / ``f10_out``: of those, inside EN 50160's +-1 % band / outside its +4/-6 %
+    band, per nominal of :data:`NOMINAL_HZ`; ``f10_min``/``f10_max`` [Hz] their extremes;
+    ``f10_first``/``f10_last`` [s UTC] the first and last such 10-s interval; ``f10_open``:
+    10-s intervals whose seconds may still be arriving (fewer than ten here, at commit time:
+    the report reads such an interval's seconds itself); ``imb_n``/``imb_sq``: seconds with
+    an imbalance value and the sum of its squares (10-min RMS means).
+    """
+
+    t_utc: float
+    seconds: int
+    flagged: int
+    hz_n: int
+    f10_n: int
+    f10_in: tuple[int, ...]
+    f10_out: tuple[int, ...]
+    f10_min: float | None
+    f10_max: float | None
+    f10_first: float | None
+    f10_last: float | None
+    f10_open: int
+    imb_n: int
+    imb_sq: float
+
+
+def unit_rollup(chunk: TrendChunk, *, final: bool = False,
+                span_s: int = 600) -> list[UnitRollupRow]:
+    """Per-interval figures of a chunk that do not belong to one channel: measured and
+    flagged seconds, 10-s frequency means against the EN 50160 bands, imbalance sums.
+
+    ``final``: the chunk holds every second of its intervals (a report's own read), so a 10-s
+    interval with nine seconds makes a mean; at commit time (``final`` False) only ten
+    seconds make a mean there and then, fewer leave the 10-s interval open (its other seconds
+    may come in another batch).
+
+    References
+    ----------
+    EN 50160 power frequency (10-s means, +-1 % / +4 %/-6 %); IEC 61000-4-30 cl. 4.5
+    (10-min aggregation); nine-of-ten rule: common practice.
+    """
+    keep = chunk.present
+    t = chunk.t[keep]
+    out: list[UnitRollupRow] = []
+    if t.size == 0:
+        return out
+    hz, imb = chunk.hz[keep], chunk.imbalance[keep]
+    flagged = (chunk.flags[keep] & FLAG_EVENT) != 0
+    slot = np.floor(t / span_s).astype(np.int64)
+    slots, inv = np.unique(slot, return_inverse=True)
+    m = slots.size
+
+    def count(mask: npt.NDArray[np.bool_], on: I64 = inv, size: int = m) -> I64:
+        return np.bincount(on, weights=mask.astype(np.float64), minlength=size).astype(np.int64)
+
+    seconds = np.bincount(inv, minlength=m)
+    fl = count(flagged)
+    has_hz, has_imb = np.isfinite(hz), np.isfinite(imb)
+    hz_n, imb_n = count(has_hz), count(has_imb)
+    imb_sq = np.bincount(inv, weights=np.where(has_imb, imb, 0.0) ** 2, minlength=m)
+    # 10-s means of the seconds with a frequency (slot as ten_second_means forms it).
+    th, fh = t[has_hz], hz[has_hz]
+    s10 = np.floor(th / 10.0 + 1e-9).astype(np.int64)
+    u10, i10 = np.unique(s10, return_inverse=True)
+    n10 = np.bincount(i10, minlength=u10.size)
+    mean10 = np.bincount(i10, weights=fh, minlength=u10.size) / np.maximum(n10, 1)
+    made = n10 >= (TEN_S_MIN_VALUES if final else 10)
+    open10 = (n10 < 10) & ~made if not final else np.zeros(u10.size, bool)
+    owner = np.searchsorted(slots, np.floor(u10 * 10.0 / span_s).astype(np.int64))
+    f10_n = count(made, owner)
+    f10_open = count(open10, owner)
+    inside = [count(made & (mean10 >= FREQ_BAND[0] * f) & (mean10 <= FREQ_BAND[1] * f), owner)
+              for f in NOMINAL_HZ]
+    outside = [count(made & ((mean10 < FREQ_ALL[0] * f) | (mean10 > FREQ_ALL[1] * f)), owner)
+               for f in NOMINAL_HZ]
+    fmin = np.full(m, np.inf)
+    fmax = np.full(m, -np.inf)
+    first = np.full(m, np.inf)
+    last = np.full(m, -np.inf)
+    np.minimum.at(fmin, owner[made], mean10[made])
+    np.maximum.at(fmax, owner[made], mean10[made])
+    np.minimum.at(first, owner[made], u10[made] * 10.0)
+    np.maximum.at(last, owner[made], u10[made] * 10.0)
+    for j in range(m):
+        out.append(UnitRollupRow(
+            t_utc=float(slots[j] * span_s), seconds=int(seconds[j]), flagged=int(fl[j]),
+            hz_n=int(hz_n[j]), f10_n=int(f10_n[j]),
+            f10_in=tuple(int(x[j]) for x in inside), f10_out=tuple(int(x[j]) for x in outside),
+            f10_min=_opt(fmin[j]), f10_max=_opt(fmax[j]), f10_first=_opt(first[j]),
+            f10_last=_opt(last[j]), f10_open=int(f10_open[j]), imb_n=int(imb_n[j]),
+            imb_sq=float(imb_sq[j])))
+    return out
+
+
 def fold(rows: Sequence[Mapping[str, Any]], span_s: int) -> list[dict[str, Any]]:
     """Rollup rows (dicts as :meth:`RecorderStore.rollups` returns them, one span) folded into
     intervals of ``span_s`` [s] (a multiple of theirs): counts and sums add, extremes keep
@@ -365,5 +482,6 @@ def fold(rows: Sequence[Mapping[str, Any]], span_s: int) -> list[dict[str, Any]]
     return [out[k] for k in sorted(out)]
 
 
-__all__ = ["ALL_FIELDS", "HIGH_PU", "LOW_PU", "SPANS", "VOLTAGE_FIELDS", "RollupRow",
-           "TrendChunk", "decode_rows", "fold", "pack_row", "rollup", "unpack_row"]
+__all__ = ["ALL_FIELDS", "HIGH_PU", "LOW_PU", "NOMINAL_HZ", "ROLLUP_FIELDS", "SPANS",
+           "VOLTAGE_FIELDS", "RollupRow", "TrendChunk", "UnitRollupRow", "decode_rows", "fold",
+           "pack_row", "rollup", "select", "unit_rollup", "unpack_row"]

@@ -18,6 +18,7 @@ Rules
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -220,7 +221,8 @@ def inverter_trips(events: Sequence[Mapping[str, Any]], nominal_v: float, *,
 def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
                         rms_max_v: npt.ArrayLike | None, nominal_v: float, *,
                         ten_min_means_v: npt.ArrayLike | None = None,
-                        threshold_pu: float = EN50549_TEN_MIN_PU) -> dict[str, Any]:
+                        threshold_pu: float = EN50549_TEN_MIN_PU,
+                        max_per_day_v: Mapping[str, float] | None = None) -> dict[str, Any]:
     """Overvoltage figures for a solar installer (every value counted, flagged included).
 
     Parameters
@@ -232,6 +234,9 @@ def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
     ten_min_means_v : numeric, optional  [V]  stored 10-min means; else 10-min moving means
         of the per-second values (full windows only)
     threshold_pu : float  1.10 (EN 50549-1 10-min level, from memory)
+    max_per_day_v : {UTC date: V}, optional  the highest per-second mean or Urms(1/2)
+        maximum per day over every second, where the caller has it (from rollups) and
+        ``t_utc`` holds only the seconds the counts above the threshold need
 
     Returns
     -------
@@ -258,9 +263,12 @@ def overvoltage_summary(t_utc: npt.ArrayLike, rms_mean_v: npt.ArrayLike,
     else:
         ten = np.concatenate([moving_rms_mean(t, mean[:, c])[1] for c in range(mean.shape[1])]) \
             if t.size else np.empty(0)
-    ok = np.isfinite(highest) & np.isfinite(t)
-    daily = {key: high for key, (_, _, high, _) in per_day(t[ok], highest[ok]).items()}
-    max_v = float(highest[ok].max()) if ok.any() else None
+    if max_per_day_v is None:
+        ok = np.isfinite(highest) & np.isfinite(t)
+        daily = {key: high for key, (_, _, high, _) in per_day(t[ok], highest[ok]).items()}
+    else:
+        daily = {k: float(v) for k, v in sorted(max_per_day_v.items()) if math.isfinite(v)}
+    max_v = max(daily.values()) if daily else None
     return {
         "threshold_pu": threshold_pu, "threshold_v": limit,
         "seconds_above": int(np.count_nonzero(m_row > limit)),

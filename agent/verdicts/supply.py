@@ -12,6 +12,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -77,9 +78,23 @@ def frequency_en50160(t_utc: npt.ArrayLike, ten_s_hz: npt.ArrayLike, nominal_hz:
     n = int(f.size)
     lo, hi = FREQ_BAND[0] * nominal_hz, FREQ_BAND[1] * nominal_hz
     alo, ahi = FREQ_ALL[0] * nominal_hz, FREQ_ALL[1] * nominal_hz
-    inside = int(np.count_nonzero((f >= lo) & (f <= hi)))
-    outside_all = int(np.count_nonzero((f < alo) | (f > ahi)))
-    span = float(t.max() - t.min() + 10.0) if n else 0.0
+    return frequency_from_counts({
+        "n": n, "inside": int(np.count_nonzero((f >= lo) & (f <= hi))),
+        "outside_all": int(np.count_nonzero((f < alo) | (f > ahi))),
+        "t_first": float(t.min()) if n else None, "t_last": float(t.max()) if n else None,
+        "min_hz": float(f.min()) if n else None, "max_hz": float(f.max()) if n else None},
+        nominal_hz)
+
+
+def frequency_from_counts(counts: Mapping[str, Any], nominal_hz: float) -> Verdict:
+    """:func:`frequency_en50160` from additive counts of the 10-s means (as rollups keep
+    them per interval): ``n``, ``inside`` (within +-1 %), ``outside_all`` (outside
+    +4 %/-6 %), ``t_first``/``t_last`` [s] first and last 10-s interval, ``min_hz``/``max_hz``.
+    """
+    n, inside, outside_all = int(counts["n"]), int(counts["inside"]), int(counts["outside_all"])
+    lo, hi = FREQ_BAND[0] * nominal_hz, FREQ_BAND[1] * nominal_hz
+    alo, ahi = FREQ_ALL[0] * nominal_hz, FREQ_ALL[1] * nominal_hz
+    span = float(counts["t_last"] - counts["t_first"] + 10.0) if n else 0.0
     if n == 0:
         verdict, passed = "no_data", None
     else:
@@ -93,8 +108,8 @@ def frequency_en50160(t_utc: npt.ArrayLike, ten_s_hz: npt.ArrayLike, nominal_hz:
                "period_rule": "a year (shorter periods are provisional)"},
         details={"nominal_hz": nominal_hz, "fraction_within_1pct":
                  round(inside / n, 6) if n else None, "outside_4_6pct": outside_all,
-                 "min_hz": round(float(f.min()), 4) if n else None,
-                 "max_hz": round(float(f.max()), 4) if n else None,
+                 "min_hz": round(float(counts["min_hz"]), 4) if n else None,
+                 "max_hz": round(float(counts["max_hz"]), 4) if n else None,
                  "band_hz": [round(lo, 3), round(hi, 3)], "all_hz": [round(alo, 3),
                                                                      round(ahi, 3)]})
 
