@@ -46,8 +46,9 @@ NOW = T0 + 2 * DAY
 
 def solar_home() -> dict[str, Any]:
     """Invented split-phase home: starts 5 s past the hour, a 3-h midday rise to 126.5 V on
-    L2 (one second back inside at 12:30), a 5-s swell to 1.12 pu, half-cycle peaks above 1.10 pu while the means stay inside,
-    37 s unmeasured, a 10-s frequency excursion to 60.8 Hz, flagged seconds."""
+    L2 (one second back inside at 12:30), a 5-s swell to 1.12 pu, half-cycle peaks above
+    1.10 pu while the means stay inside, 37 s unmeasured, a 10-s frequency excursion to
+    60.8 Hz, flagged seconds."""
     rng = np.random.default_rng(11)
     t = T0 + 5.0 + np.arange(HOURS * 3600 - 5, dtype=float)
     n = t.size
