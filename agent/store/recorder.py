@@ -745,8 +745,10 @@ class RecorderStore:
 
     def has_unit_rollups(self) -> bool:
         """The store keeps the 10-min rollups the fleet report reads (schema 6 or later; an
-        older store not yet migrated by a collector is read second by second)."""
-        return self.db.schema_version() >= _UNIT_ROLLUP_VERSION
+        older store not yet migrated by a collector is read second by second). Read only: a
+        reader's connection may not write."""
+        row = self.db.query_one("SELECT MAX(version) FROM schema_version")
+        return row is not None and row[0] is not None and int(row[0]) >= _UNIT_ROLLUP_VERSION
 
     @staticmethod
     def latest_schema_version() -> int:
