@@ -1,17 +1,19 @@
 """Load harness: many lightweight simulated agents against real collectors.
 
 Each simulated agent is one paho client with its own broker credentials (bound to its site,
-``setup.add_devices``) that replays messages built beforehand with the project's wire codec:
-one summary of ``records`` per-second records per tick and a 10-min aggregate every tenth
-tick, as an edge sends them (the values are INVENTED, noise around 230 V). Agents are spread
+``setup.add_devices``) that replays messages built beforehand with the project's wire codec,
+as an edge sends them: its online status, one summary of ``records`` per-second records per
+tick, a 10-min aggregate and a heartbeat every tenth tick, and for every fourth agent one dip
+event (the values are INVENTED, noise around 120 V). Agents are spread
 over a few publisher processes; no measurement runs at publish time. Collectors are
 ``agent.collect.service.Collector`` in processes of their own (one, or several in one shared
 group on a PostgreSQL store), each recording when every message it handled was committed.
 
-What it measures: messages published and committed, lost (published, not in the store),
-duplicated (a second per-second record for the same device and time in the rollups, or
-more committed notes than messages), publish-to-commit latency (p50, p99), each collector's
-CPU seconds (``/proc/<pid>/stat``) and the rate it sustained. Loopback only; every loop is
+What it measures: messages published and committed, per type; lost (published, not in
+``received``); stored twice (more rows of a type than were sent, a unit's seconds under two
+keys, rollups counting more seconds than were sent); publish-to-commit latency (p50, p99);
+each collector's, the broker's and the publishers' CPU seconds (``/proc/<pid>/stat``,
+``time.process_time``) and the rate the collectors sustained. Loopback only; every loop is
 bounded in count and time.
 """
 
@@ -34,8 +36,10 @@ import numpy as np
 import paho.mqtt.client as mqtt
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+sys.path.insert(0, str(Path(__file__).resolve().parent / "bench"))
 
 from _mqtt_helpers import make_broker
+from bench_fleet import NOMINAL, event_body
 
 from agent.broker import setup
 from agent.measurement.types import Aggregate
@@ -44,32 +48,58 @@ from agent.wire.records import SummaryBatcher
 
 SITE = "invented-load"
 CHANNELS = ["L1", "L2"]
+#: The invented homes' site model (120/240 V split phase, 60 Hz, as in bench_fleet.py).
+SITE_MODEL = {"nominal_v": NOMINAL, "nominal_hz": 60.0, "service_type": "120/240",
+              "channel_names": CHANNELS, "measurement_point": "service", "feeder": "F1",
+              "transformer": "T1", "labels": {}}
+#: Message types an agent sends, in the order results report them.
+KINDS = ("summary", "aggregate", "status", "event")
 
 
 def agent_messages(device: str, ticks: int, records: int, t0: float, seed: int
-                   ) -> list[tuple[str, bytes]]:
-    """(topic, payload) of one invented agent: a summary per tick, an aggregate every 10."""
+                   ) -> list[list[tuple[str, str, bytes]]]:
+    """(type, topic, payload) of one invented agent, tick by tick, in the order an edge sends
+    them: its online status with the site model first; a summary of ``records`` per-second
+    records per tick; every tenth tick the 10-min aggregate and a heartbeat status (the
+    edge's heartbeat is every 600 s); every fourth agent (``seed % 4 == 0``) one dip, sent
+    when it ended (``bench_fleet.event_body``)."""
     rng = np.random.default_rng(seed)
     ident = codec.Identity(SITE, device, "e1")
-    out: list[tuple[str, bytes]] = []
+    out: list[list[tuple[str, str, bytes]]] = []
     seq = 0
+
+    def add(tick: list[tuple[str, str, bytes]], kind: str, body: dict[str, Any]) -> None:
+        nonlocal seq
+        seq += 1
+        tick.append((kind, f"hc/v1/{SITE}/{device}/{kind}",
+                     codec.encode(ident.stamp(body, seq))))
+
+    dip_tick = (3 + seed // 4) % ticks if seed % 4 == 0 else -1
     for k in range(ticks):
+        tick: list[tuple[str, str, bytes]] = []
         t = t0 + k * records + np.arange(records, dtype=np.float64)
-        v = 230.0 + rng.normal(0.0, 0.8, (records, 2))
+        if k == 0:
+            add(tick, "status", codec.status_body(
+                "online", agent_version="load", uptime_s=1.0, outbox_depth=0, sync="synced",
+                time_error_s=0.002, t=float(t[0]) - 1.0, site_model=SITE_MODEL))
+        v = NOMINAL + rng.normal(0.0, 0.4, (records, 2))
         batcher = SummaryBatcher(CHANNELS, k=records)
-        bodies = batcher.add_many(t, v - 0.5, v, v + 0.5, 50.0 + rng.normal(0, 0.01, records),
+        bodies = batcher.add_many(t, v - 0.3, v, v + 0.3, 60.0 + rng.normal(0, 0.01, records),
                                   np.full((records, 2), 0.02), np.full(records, np.nan),
                                   np.zeros(records))
-        body = bodies[0] if bodies else batcher.flush()
-        seq += 1
-        out.append((f"hc/v1/{SITE}/{device}/summary", codec.encode(ident.stamp(body, seq))))
+        add(tick, "summary", bodies[0] if bodies else batcher.flush())
+        if k == dip_tick:
+            add(tick, "event", event_body(f"{device}-dip-{k}", "dip", float(t[records // 2]),
+                                          0.2, 0.8))
         if k % 10 == 9:
             agg = Aggregate(kind="10min", t_utc=float(t[-1] + 1 - 10 * records),
-                            duration_s=10.0 * records, rms=(230.0, 230.1), thd=(0.02, 0.02),
-                            hz=50.0, count=3000)
-            seq += 1
-            out.append((f"hc/v1/{SITE}/{device}/aggregate",
-                        codec.encode(ident.stamp(codec.aggregate_body(agg, CHANNELS), seq))))
+                            duration_s=10.0 * records, rms=(NOMINAL, NOMINAL + 0.1),
+                            thd=(0.02, 0.02), hz=60.0, count=3600)
+            add(tick, "aggregate", codec.aggregate_body(agg, CHANNELS))
+            add(tick, "status", codec.status_body(
+                "heartbeat", agent_version="load", uptime_s=float((k + 1) * records),
+                outbox_depth=0, sync="synced", time_error_s=0.002, t=float(t[-1])))
+        out.append(tick)
     return out
 
 
@@ -84,15 +114,17 @@ class Phase:
 
     @property
     def rate(self) -> float:
-        """Offered load [msg/s] (summaries and aggregates)."""
-        return self.agents * 1.1 / self.tick_s
+        """Offered load [msg/s]: per agent and ten ticks, ten summaries, an aggregate and a
+        heartbeat (the online status and the few events left out)."""
+        return self.agents * 1.2 / self.tick_s
 
 
-def _publisher(port: int, creds: list[tuple[str, str]], streams: list[list[tuple[str, bytes]]],
-               tick_s: float, start: Any, t_start: Any, sent: Any, offset: int,
-               index: list[list[int]]) -> None:
+def _publisher(port: int, creds: list[tuple[str, str]],
+               streams: list[list[list[tuple[str, str, bytes]]]], tick_s: float, start: Any,
+               t_start: Any, sent: Any, index: list[list[int]], cpu: Any, slot: int) -> None:
     """One publisher process: its agents' clients, then one tick of every agent per
-    ``tick_s`` (spread evenly over the tick), stamping each message's send time."""
+    ``tick_s`` (spread evenly over the tick), stamping each message's send time; its own
+    CPU seconds from the start to the last acknowledgement go to ``cpu[slot]``."""
     clients = []
     for device, pw in creds:
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"sim-{device}",
@@ -103,22 +135,20 @@ def _publisher(port: int, creds: list[tuple[str, str]], streams: list[list[tuple
         c.loop_start()
         clients.append(c)
     start.wait(60)
+    cpu0 = time.process_time()
     t0 = t_start.value
     pos = [0] * len(clients)
     n_ticks = max((len(s) for s in streams), default=0)
     for tick in range(n_ticks):
         for a, c in enumerate(clients):
+            if tick >= len(streams[a]):
+                continue
             at = t0 + tick * tick_s + tick_s * a / max(len(clients), 1)
             delay = at - time.time()
             if delay > 0:
                 time.sleep(delay)
-            # One tick of this agent: its summary and, every tenth tick, the aggregate after it.
-            for _ in range(2 if pos[a] + 1 < len(streams[a])
-                           and streams[a][pos[a] + 1][0].endswith("aggregate") else 1):
-                if pos[a] >= len(streams[a]):
-                    break
-                topic, payload = streams[a][pos[a]]
-                sent[offset + index[a][pos[a]]] = time.time()
+            for _kind, topic, payload in streams[a][tick]:
+                sent[index[a][pos[a]]] = time.time()
                 info = c.publish(topic, payload, qos=1)
                 for _ in range(5000):  # bounded: 5 s of a full client queue
                     if info.rc != mqtt.MQTT_ERR_QUEUE_SIZE:
@@ -129,6 +159,7 @@ def _publisher(port: int, creds: list[tuple[str, str]], streams: list[list[tuple
     deadline = time.time() + 60
     while time.time() < deadline and any(getattr(c, "_out_messages", None) for c in clients):
         time.sleep(0.05)
+    cpu[slot] = time.process_time() - cpu0
     for c in clients:
         c.loop_stop()
         c.disconnect()
@@ -196,11 +227,19 @@ class LoadResult:
     duplicated: int
     committed_by: list[int]
     cpu_s: list[float]
+    broker_cpu_s: float
+    publishers_cpu_s: float
     p50_ms: float
     p99_ms: float
     drained_s: float
     records_published: int
     records_stored: int
+    #: Per message type: published, and rows in its own table (summary: ``trend``,
+    #: aggregate: ``aggregates``, event: ``events``, status: ``received``).
+    published_by_kind: dict[str, int] = field(default_factory=dict)
+    stored_by_kind: dict[str, int] = field(default_factory=dict)
+    #: Where anything was stored more than once: name -> excess (rows, or records / 60).
+    duplicates: dict[str, int] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
 
     @property
@@ -243,10 +282,13 @@ def run_load(root: Path, store_url: str, phase: Phase, *, collectors: int = 1,
     streams = [agent_messages(d, phase.ticks, phase.records, t0, i)
                for i, d in enumerate(devices)]
     flat: list[tuple[str, int]] = []  # (device, seq) of every message, in global index order
+    kinds: list[str] = []
     index: list[list[int]] = []
     for d, s in zip(devices, streams, strict=True):
-        index.append(list(range(len(flat), len(flat) + len(s))))
-        flat.extend((d, k + 1) for k in range(len(s)))
+        msgs = [m for tick in s for m in tick]
+        index.append(list(range(len(flat), len(flat) + len(msgs))))
+        flat.extend((d, k + 1) for k in range(len(msgs)))
+        kinds.extend(kind for kind, _, _ in msgs)
     sent = ctx.Array("d", len(flat), lock=False)
     try:
         # The store's schema first, so collectors starting together do not race to create it.
@@ -266,16 +308,18 @@ def run_load(root: Path, store_url: str, phase: Phase, *, collectors: int = 1,
             if not r.wait(60):
                 raise RuntimeError("a collector did not start within 60 s")
         cpu0 = [_cpu_s(p.pid) for p in procs if p.pid]
+        broker_pid = broker.proc.pid if broker.proc is not None else 0
+        broker_cpu0 = _cpu_s(broker_pid)
         start, t_start = ctx.Event(), ctx.Value("d", 0.0)
         pubs = []
-        groups = [list(range(i, phase.agents, publishers)) for i in range(publishers)]
-        for g in groups:
-            if not g:
-                continue
+        groups = [g for g in (list(range(i, phase.agents, publishers))
+                              for i in range(publishers)) if g]
+        pub_cpu = ctx.Array("d", len(groups), lock=False)
+        for slot, g in enumerate(groups):
             p = ctx.Process(target=_publisher, args=(
                 broker.port, [(devices[a], passwords[devices[a]]) for a in g],
-                [streams[a] for a in g], phase.tick_s, start, t_start, sent, 0,
-                [index[a] for a in g]))
+                [streams[a] for a in g], phase.tick_s, start, t_start, sent,
+                [index[a] for a in g], pub_cpu, slot))
             p.start()
             pubs.append(p)
         time.sleep(2.0 + phase.agents / 200)  # clients connected
@@ -294,17 +338,38 @@ def run_load(root: Path, store_url: str, phase: Phase, *, collectors: int = 1,
                 time.sleep(0.25)
             drained = time.time() - t_end
             cpu1 = [_cpu_s(p.pid) for p in procs if p.pid]
+            broker_cpu = _cpu_s(broker_pid) - broker_cpu0
             stop.set()
             for p in procs:
                 p.join(90)
-            got = {(d, int(s)) for d, s in store.db.query("SELECT device, seq FROM received")}
-            records = store.db.query_one("SELECT COALESCE(SUM(seconds), 0) FROM trend_unit")
-            trend_rows = store.count("trend")
+            db = store.db
+            got = {(d, int(s)) for d, s in db.query("SELECT device, seq FROM received")}
+
+            def one(sql: str) -> int:
+                row = db.query_one(sql)
+                return int(row[0]) if row and row[0] is not None else 0
+
+            records_stored = one("SELECT COALESCE(SUM(seconds), 0) FROM trend_unit")
+            # One channel's 10-min rollups count every second once (the other is the same).
+            rollup_seconds = one("SELECT COALESCE(SUM(seconds), 0) FROM trend_rollup"
+                                 " WHERE span_s = 600 AND channel = 0")
+            stored_by_kind = {
+                "summary": one("SELECT COUNT(*) FROM trend"),
+                "aggregate": one("SELECT COUNT(*) FROM aggregates"),
+                "event": one("SELECT COUNT(*) FROM events"),
+                "status": one("SELECT COUNT(*) FROM received WHERE type = 'status'")}
+                    # The same seconds of a unit under two keys would be a summary stored twice.
+            twice = {"trend": one("SELECT COUNT(*) FROM (SELECT 1 FROM trend GROUP BY device,"
+                                  " t_utc HAVING COUNT(*) > 1) x")}
         finally:
             store.close()
     finally:
         broker.stop()
     published = {k for i, k in enumerate(flat) if sent[i] > 0}
+    published_by_kind = dict.fromkeys(KINDS, 0)
+    for i, kind in enumerate(kinds):
+        if sent[i] > 0:
+            published_by_kind[kind] += 1
     notes_all = [json.loads(f.read_text()) if f.exists() else [] for f in files]
     first_commit: dict[tuple[str, int], float] = {}
     noted = 0
@@ -316,25 +381,30 @@ def run_load(root: Path, store_url: str, phase: Phase, *, collectors: int = 1,
     pos = {k: i for i, k in enumerate(flat)}
     lat = np.array([at - sent[pos[k]] for k, at in first_commit.items()
                     if k in pos and sent[pos[k]] > 0])
-    summaries = sum(1 for s in streams for topic, _ in s if topic.endswith("summary"))
-    records_published = summaries * phase.records
-    records_stored = int(records[0]) if records else 0
+    records_published = published_by_kind["summary"] * phase.records
+    # Redelivered messages are expected (acknowledged after commit); a duplicate is one
+    # stored twice: more rows of a type than were sent, a unit's seconds twice, or rollups
+    # that count more seconds than were sent.
+    duplicates = {f"{k} rows": max(0, stored_by_kind[k] - published_by_kind[k])
+                  for k in KINDS}
+    duplicates.update({f"{k} seconds twice": v for k, v in twice.items()})
+    duplicates["unit rollup seconds"] = max(0, records_stored - records_published)
+    duplicates["10-min rollup seconds"] = max(0, rollup_seconds - records_published)
     duration = max(t_end - t_start.value, 1e-9)
     result = LoadResult(
         agents=phase.agents, collectors=collectors,
         backend="postgresql" if store_url.startswith("postgresql") else "sqlite",
         duration_s=duration, offered_msg_s=phase.rate, published=len(published),
         committed=len(got & published), lost=len(published - got),
-        # Redelivered messages are expected (acknowledged after commit); a duplicate is one
-        # stored twice: rollups that count more seconds than were sent, or more trend rows.
-        duplicated=max(0, records_stored - records_published) // phase.records
-        + max(0, trend_rows - summaries),
+        duplicated=sum(duplicates.values()),
         committed_by=[len(n) for n in notes_all],
         cpu_s=[b - a for a, b in zip(cpu0, cpu1, strict=True)],
+        broker_cpu_s=broker_cpu, publishers_cpu_s=float(sum(pub_cpu)),
         p50_ms=float(np.percentile(lat, 50) * 1000) if lat.size else float("nan"),
         p99_ms=float(np.percentile(lat, 99) * 1000) if lat.size else float("nan"),
         drained_s=drained, records_published=records_published,
-        records_stored=records_stored)
+        records_stored=records_stored, published_by_kind=published_by_kind,
+        stored_by_kind=stored_by_kind, duplicates=duplicates)
     if noted > len(flat):
         result.notes.append(f"{noted - len(flat)} messages handled more than once "
                             "(redelivered before their ack; stored once)")
