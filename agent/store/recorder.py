@@ -522,6 +522,30 @@ def _rollup_upsert(dialect: str) -> str:
             f" DO UPDATE SET {', '.join(sets)}")
 
 
+def _period(device: str, start_utc: float | None, end_utc: float | None
+            ) -> tuple[str, tuple[Any, ...]]:
+    """WHERE conditions and parameters for one device's rows with ``t_utc`` in
+    ``[start_utc, end_utc)`` (either end open when None)."""
+    conds = "device = ?"
+    params: list[Any] = [device]
+    if start_utc is not None:
+        conds += " AND t_utc >= ?"
+        params.append(start_utc)
+    if end_utc is not None:
+        conds += " AND t_utc < ?"
+        params.append(end_utc)
+    return conds, tuple(params)
+
+
+def _unpack_body(db: Database, data: Any) -> dict[str, Any] | None:
+    """A stored trend row's body, None when it does not unpack to a map."""
+    try:
+        body = msgpack.unpackb(db.blob(data), raw=False, strict_map_key=False)
+    except (ValueError, TypeError, msgpack.UnpackException):
+        return None
+    return body if isinstance(body, dict) else None
+
+
 def _unit_upsert(dialect: str) -> str:
     """Upsert of one unit rollup row: counts and sums add, extremes keep the extreme."""
     least, greatest = ("LEAST", "GREATEST") if dialect == "postgresql" else ("MIN", "MAX")
@@ -1688,14 +1712,7 @@ class RecorderStore:
             rows = db.query(sql + " ORDER BY t_utc, epoch, seq LIMIT ?", (*params, page))
             if not rows:
                 return
-            bodies: list[dict[str, Any] | None] = []
-            for _, _, _, data in rows:
-                try:
-                    body = msgpack.unpackb(db.blob(data), raw=False, strict_map_key=False)
-                    bodies.append(body if isinstance(body, dict) else None)
-                except (ValueError, TypeError, msgpack.UnpackException):
-                    bodies.append(None)
-            yield bodies
+            yield [_unpack_body(db, data) for _, _, _, data in rows]
             if len(rows) < page:
                 return
             last = tuple(rows[-1][:3])
@@ -1761,11 +1778,7 @@ class RecorderStore:
                     seen.add((t_utc, epoch, seq))
                 elif t_utc + MAX_SUMMARY_S > b:
                     seen.add((t_utc, epoch, seq))
-                try:
-                    body = msgpack.unpackb(self.db.blob(data), raw=False, strict_map_key=False)
-                    bodies.append(body if isinstance(body, dict) else None)
-                except (ValueError, TypeError, msgpack.UnpackException):
-                    bodies.append(None)
+                bodies.append(_unpack_body(self.db, data))
             bounds.append((a, b))
             if len(bodies) >= rows_per_chunk:
                 yield flush()
@@ -1779,14 +1792,7 @@ class RecorderStore:
         column arrays (NULL as NaN), ordered by time: per channel (``t_utc``, ``channel``,
         ``seconds``, ``flagged``, ``sum_v``, ``sum_sq_v2``, ``min_v``, ``max_v``, ``low_v``,
         ``peak_v``) and per unit (``t_utc`` and :data:`UNIT_COLUMNS`)."""
-        conds = "device = ?"
-        params: list[Any] = [device]
-        if start_utc is not None:
-            conds += " AND t_utc >= ?"
-            params.append(start_utc)
-        if end_utc is not None:
-            conds += " AND t_utc < ?"
-            params.append(end_utc)
+        conds, params = _period(device, start_utc, end_utc)
         ccols = ("t_utc", "channel", "seconds", "flagged", "sum_v", "sum_sq_v2", "min_v",
                  "max_v", "low_v", "peak_v")
         ucols = ("t_utc", *UNIT_COLUMNS)
@@ -1795,7 +1801,7 @@ class RecorderStore:
                            f"span_s = {trend_codec.SPANS[0]} AND {conds} ORDER BY t_utc, channel"),
                           (ucols, f"SELECT {', '.join(ucols)} FROM trend_unit WHERE {conds}"
                            " ORDER BY t_utc")):
-            rows = self.db.query(sql, tuple(params))
+            rows = self.db.query(sql, params)
             table = np.array(rows, dtype=np.float64) if rows else np.empty((0, len(cols)))
             out.append({c: table[:, i] for i, c in enumerate(cols)})
         return out[0], out[1]
@@ -1804,16 +1810,10 @@ class RecorderStore:
                            end_utc: float | None = None) -> list[Any]:
         """Stored aggregate messages of one device whose ``t`` lies in ``[start_utc,
         end_utc)``, in time order (None for a row that does not parse)."""
-        sql = "SELECT payload FROM aggregates WHERE device = ?"
-        params: list[Any] = [device]
-        if start_utc is not None:
-            sql += " AND t_utc >= ?"
-            params.append(start_utc)
-        if end_utc is not None:
-            sql += " AND t_utc < ?"
-            params.append(end_utc)
+        conds, params = _period(device, start_utc, end_utc)
         out: list[Any] = []
-        for (text,) in self.db.query(sql + " ORDER BY t_utc, epoch, seq", tuple(params)):
+        for (text,) in self.db.query(f"SELECT payload FROM aggregates WHERE {conds}"
+                                     " ORDER BY t_utc, epoch, seq", params):
             try:
                 out.append(from_json(text))
             except ValueError:
